@@ -1,0 +1,20 @@
+# The two commands of the README. Each prepares (or reuses) .venv first.
+VENV ?= .venv
+PY := $(VENV)/bin/python
+
+.PHONY: setup demo test test-fast bench clean-venv
+
+setup:
+	@bash scripts/setup.sh
+
+demo: setup
+	$(PY) -m pipeline.cli demo --out demo-output
+
+test: setup
+	$(PY) -m pytest -q
+
+test-fast: setup
+	$(PY) -m pytest -q -m "not slow"
+
+clean-venv:
+	rm -rf $(VENV)
