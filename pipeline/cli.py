@@ -1,0 +1,193 @@
+"""Command-line interface: ``helisweep <command> ...`` (also ``python -m pipeline.cli``).
+
+Commands
+--------
+preview    device outline + preflight checks + mesh figure (no sweep)
+preflight  the preflight checks for a sweep configuration's device
+run        run or resume a sweep into its Zarr store
+status     what a run's store holds and what is left
+demo       the demonstration scenario end to end
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+import warnings
+from pathlib import Path
+
+from .errors import HelisweepError
+
+__all__ = ["main"]
+
+
+def _parse_params(items: list[str]) -> dict[str, float]:
+    out = {}
+    for item in items or []:
+        key, sep, value = item.partition("=")
+        if not sep:
+            raise HelisweepError(f"--param expects NAME=VALUE (nm), got {item!r}")
+        try:
+            out[key.strip()] = float(value)
+        except ValueError:
+            raise HelisweepError(f"--param {key}: {value!r} is not a number (nm)") from None
+    return out
+
+
+def _device_from_args(args):
+    from .geometry import TEMPLATES
+    from .geometry_io import load_device
+
+    if args.device in TEMPLATES:
+        return TEMPLATES[args.device](**_parse_params(args.param))
+    path = Path(args.device)
+    if not path.exists():
+        raise HelisweepError(
+            f"{args.device!r} is neither a template ({', '.join(TEMPLATES)}) nor an existing "
+            f"geometry file"
+        )
+    return load_device(path)
+
+
+def _material_from_args(args):
+    from .materials import get_preset
+
+    return get_preset(args.material)
+
+
+def preview_device(device, material, a: float, out: Path, *, check_half: bool = True) -> str:
+    """Validate, preflight and draw a device; returns the report text (also used by the demo)."""
+    from matplotlib.figure import Figure
+
+    from .geometry import plot_device, validate_device
+    from .mesh import mesh_device
+    from .preflight import preflight
+
+    validate_device(device, a)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # the warnings are part of the report text
+        report = preflight(device, material, a, check_half=check_half)
+    mesh = mesh_device(device, a)
+    fig = Figure(figsize=(7, 5), layout="constrained")
+    ax = fig.add_subplot()
+    plot_device(device, ax=ax, sites=mesh.positions, lattice_constant=a)
+    ax.set_title(f"{device.name}: {mesh.n_sites} sites, a = {a:g} nm (model estimate)")
+    out.parent.mkdir(parents=True, exist_ok=True)
+    fig.savefig(out, dpi=150)
+    fig.savefig(out.with_suffix(".pdf"))
+    return report.text()
+
+
+def _cmd_preview(args) -> int:
+    device = _device_from_args(args)
+    text = preview_device(device, _material_from_args(args), args.lattice, Path(args.out))
+    print(text)
+    print(f"figure: {args.out} (and .pdf)")
+    return 0
+
+
+def _cmd_preflight(args) -> int:
+    from .config import load_config
+    from .engine import device_for
+
+    cfg = load_config(args.config)
+    out_dir = Path(args.out) if args.out else cfg.run_dir
+    for g, value in enumerate(cfg.axes["geometry"]):
+        device = device_for(cfg, g)
+        suffix = f"-{value:g}nm" if cfg.sweep.geometry else ""
+        out = out_dir / f"device{suffix}.png"
+        print(preview_device(device, cfg.material.parameters(), cfg.lattice.constant, out))
+        print(f"figure: {out}")
+    return 0
+
+
+def _cmd_run(args) -> int:
+    from .config import load_config
+    from .engine import local_client, run_sweep
+
+    cfg = load_config(args.config)
+    client = None
+    if args.workers is not None:
+        client = local_client(args.workers)
+    try:
+        store = run_sweep(cfg, client=client, store_path=args.store, fresh=args.fresh,
+                          progress=not args.quiet)
+    finally:
+        if client is not None:
+            cluster = client.cluster
+            client.close()
+            cluster.close()
+    c = store.counts()
+    print(f"{store.path}: {c['done']} done, {c['failed']} failed, {c['missing']} missing of {c['total']}")
+    return 0
+
+
+def _cmd_status(args) -> int:
+    from .store import SampleStore
+
+    target = Path(args.target)
+    if target.suffix == ".toml":
+        from .config import load_config
+
+        target = load_config(target).run_dir / "samples.zarr"
+    store = SampleStore.open(target)
+    c = store.counts()
+    print(f"{target}: {c['done']} done, {c['failed']} failed, {c['missing']} missing of "
+          f"{c['total']} samples ({len(store.pending_tasks())} tasks left)")
+    return 0
+
+
+def _cmd_demo(args) -> int:
+    from .demo import run_demo
+
+    run_demo(Path(args.out), workers=args.workers)
+    return 0
+
+
+def build_parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(prog="helisweep", description=__doc__.split("\n")[0])
+    sub = p.add_subparsers(dest="command", required=True)
+
+    q = sub.add_parser("preview", help="draw a device, mesh it and run the preflight checks")
+    q.add_argument("device", help="geometry file (.geojson, .wkt, .gds) or template (strip, hbar, hallbar)")
+    q.add_argument("--param", action="append", metavar="NAME=NM", help="template parameter in nm (repeatable)")
+    q.add_argument("--material", default="hgte-7.0nm", help="material preset (default hgte-7.0nm)")
+    q.add_argument("--lattice", type=float, default=5.0, help="lattice constant in nm (default 5)")
+    q.add_argument("--out", default="device-preview.png", help="figure file (PNG; a PDF is written beside it)")
+    q.set_defaults(func=_cmd_preview)
+
+    q = sub.add_parser("preflight", help="preflight checks for a sweep configuration")
+    q.add_argument("config")
+    q.add_argument("--out", help="directory for the figures (default: the run directory)")
+    q.set_defaults(func=_cmd_preflight)
+
+    q = sub.add_parser("run", help="run or resume a sweep")
+    q.add_argument("config")
+    q.add_argument("--workers", type=int, help="local worker processes (default: execution.workers or one per core)")
+    q.add_argument("--store", help="store path (default: <run directory>/samples.zarr)")
+    q.add_argument("--fresh", action="store_true", help="start anew if the store holds another config (the old store is moved aside)")
+    q.add_argument("--quiet", action="store_true", help="no progress output")
+    q.set_defaults(func=_cmd_run)
+
+    q = sub.add_parser("status", help="what a run's store holds and what is left")
+    q.add_argument("target", help="a config file (.toml) or a store directory")
+    q.set_defaults(func=_cmd_status)
+
+    q = sub.add_parser("demo", help="run the demonstration scenario")
+    q.add_argument("--out", default="demo-output")
+    q.add_argument("--workers", type=int, default=0)
+    q.set_defaults(func=_cmd_demo)
+    return p
+
+
+def main(argv: list[str] | None = None) -> int:
+    args = build_parser().parse_args(argv)
+    try:
+        return args.func(args)
+    except HelisweepError as exc:
+        print(f"helisweep: error: {exc}", file=sys.stderr)
+        return 2
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,483 @@
+"""Sweep configuration: a TOML file validated into typed, frozen objects.
+
+Every error names the key (``[section] key``), shows the bad value and says how to fix it;
+unknown keys are refused with the nearest valid key suggested. Units are fixed per key
+(nm, meV, V, T) and values far outside a plausible range are refused as likely unit
+mix-ups (nm vs um, meV vs eV) before any compute starts.
+
+See ``configs/`` for commented examples.
+"""
+
+from __future__ import annotations
+
+import difflib
+import hashlib
+import inspect
+import math
+import tomllib
+from pathlib import Path
+from typing import Annotated, Any, Literal, Union
+
+import numpy as np
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
+
+from .errors import ConfigError
+
+__all__ = [
+    "SweepConfig",
+    "load_config",
+    "parse_config",
+    "config_hash",
+    "AXES",
+]
+
+#: sweep axes in storage order (after "realisation"), with their units
+AXES: dict[str, str] = {
+    "geometry": "nm",
+    "disorder_strength": "1",
+    "b_perp": "T",
+    "gate_voltage": "V",
+    "energy": "meV",
+}
+
+
+class _Strict(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+
+class RunSection(_Strict):
+    #: run name (used in file names and provenance)
+    name: str = Field(min_length=1, max_length=80, pattern=r"^[A-Za-z0-9_.\-]+$")
+    #: root seed of every disorder realisation
+    seed: int = Field(ge=0, lt=2**63)
+    #: number of disorder realisations per sweep point
+    realisations: int = Field(ge=1, le=10_000_000)
+    #: run directory (holds samples.zarr, summaries, figures); relative to the working directory
+    directory: str = "runs/{name}"
+
+
+class DeviceSection(_Strict):
+    #: parametric template: "strip", "hbar" or "hallbar"
+    template: str | None = None
+    #: a geometry file (.geojson, .json, .wkt, .gds); relative paths are taken from the config file
+    file: str | None = None
+    #: template parameters in nm
+    parameters: dict[str, float] = {}
+    #: GDSII layer map, e.g. {mesa = [1, 0], contact = [2, 0], gate = [3, 0]}
+    layer_map: dict[str, tuple[int, int]] | None = None
+
+    @model_validator(mode="after")
+    def _one_source(self):
+        if (self.template is None) == (self.file is None):
+            raise ValueError(
+                "give exactly one of 'template' (strip, hbar, hallbar) or 'file' (a geometry file)"
+            )
+        for key, value in self.parameters.items():
+            if not (math.isfinite(value) and value > 0):
+                raise ValueError(f"template parameter {key!r} must be a positive length in nm, got {value!r}")
+            if value > 1e6:
+                raise ValueError(
+                    f"template parameter {key!r} = {value!r} nm is over 1 mm: lengths are in nm "
+                    f"(did you give um or A?)"
+                )
+        return self
+
+
+class LatticeSection(_Strict):
+    #: square-lattice constant a in nm
+    constant: float
+
+    @field_validator("constant")
+    @classmethod
+    def _plausible(cls, v: float) -> float:
+        if not (math.isfinite(v) and v > 0):
+            raise ValueError(f"must be a positive length in nm, got {v!r}")
+        if v < 0.1:
+            raise ValueError(f"{v!r} nm is below 0.1 nm: the lattice constant is in nm (did you give um?)")
+        if v > 100:
+            raise ValueError(f"{v!r} nm is too coarse for the BHZ model (edge states are tens of nm wide); use 1-10 nm")
+        return v
+
+
+class MaterialSection(_Strict):
+    #: named preset (see pipeline.materials.PRESETS)
+    preset: str | None = None
+    A: float | None = None
+    B: float | None = None
+    C: float | None = None
+    D: float | None = None
+    M: float | None = None
+    delta_bia: float | None = None
+    g_E: float | None = None
+    g_H: float | None = None
+
+    @model_validator(mode="after")
+    def _complete(self):
+        explicit = [k for k in "ABCDM" if getattr(self, k) is None]
+        if self.preset is None and explicit:
+            raise ValueError(
+                f"give a 'preset' or all of A, B, C, D, M (missing: {', '.join(explicit)})"
+            )
+        for key in ("M", "C", "delta_bia"):
+            v = getattr(self, key)
+            if v is not None and abs(v) > 2000:
+                raise ValueError(f"{key} = {v!r} meV is implausibly large: energies are in meV (did you give ueV?)")
+        return self
+
+    def parameters(self):
+        from .materials import BHZParameters, get_preset
+
+        base = get_preset(self.preset) if self.preset else None
+        changes = {k: getattr(self, k) for k in ("A", "B", "C", "D", "M", "delta_bia", "g_E", "g_H")
+                   if getattr(self, k) is not None}
+        if base is None:
+            return BHZParameters(**changes, name="explicit parameters", source="configuration file")
+        if changes:
+            return base.with_(**changes, name=f"{base.name} (modified: {', '.join(changes)})")
+        return base
+
+
+class ContactSection(_Strict):
+    #: downward band shift in the leads (meV): 0 = device material, tens of meV = metallic contact;
+    #: one number for all contacts or a table by contact name
+    doping: float | dict[str, float] = 0.0
+
+    @field_validator("doping")
+    @classmethod
+    def _range(cls, v):
+        values = v.values() if isinstance(v, dict) else [v]
+        for x in values:
+            if not math.isfinite(x) or abs(x) > 2000:
+                raise ValueError(f"contact doping {x!r} meV is outside [-2000, 2000] meV (energies are in meV)")
+        return v
+
+
+class GateSection(_Strict):
+    #: potential energy per gate volt on the gated sites (meV/V); U = -lever_arm * V_gate
+    lever_arm: float = 0.0
+    #: gates driven by the gate_voltage axis (default: all gates of the device)
+    driven: list[str] | None = None
+
+
+class AndersonTerm(_Strict):
+    kind: Literal["anderson"]
+    #: width U of the uniform distribution [-U/2, U/2] (meV)
+    width: float = Field(ge=0, le=5000)
+
+
+class SmoothTerm(_Strict):
+    kind: Literal["smooth"]
+    #: rms amplitude (meV)
+    amplitude: float = Field(ge=0, le=5000)
+    #: Gaussian correlation length (nm)
+    correlation_length: float = Field(gt=0, le=1e5)
+
+
+class MagneticTerm(_Strict):
+    kind: Literal["magnetic"]
+    inplane: float = Field(default=0.0, ge=0, le=5000)
+    out_of_plane: float = Field(default=0.0, ge=-5000, le=5000)
+    #: magnetic impurities per nm^2 (omit for an exchange field on every site)
+    density: float | None = Field(default=None, gt=0)
+    aligned: bool = True
+
+
+class RoughnessTerm(_Strict):
+    kind: Literal["roughness"]
+    #: rms depth of the edge profile (nm)
+    amplitude: float = Field(ge=0, le=1e4)
+    #: correlation length along the edge (nm)
+    correlation_length: float = Field(gt=0, le=1e6)
+
+
+DisorderTerm = Annotated[
+    Union[AndersonTerm, SmoothTerm, MagneticTerm, RoughnessTerm], Field(discriminator="kind")
+]
+
+
+def _axis_values(value: Any, name: str, unit: str) -> list[float]:
+    if isinstance(value, (int, float)):
+        return [float(value)]
+    if isinstance(value, list):
+        out = [float(x) for x in value]
+    elif isinstance(value, dict):
+        extra = set(value) - {"start", "stop", "num", "step"}
+        if extra or "start" not in value or "stop" not in value or ("num" in value) == ("step" in value):
+            raise ValueError(
+                f"a range needs start, stop and exactly one of num or step "
+                f"(e.g. {{start = -5, stop = 5, num = 11}}), got {value!r}"
+            )
+        start, stop = float(value["start"]), float(value["stop"])
+        if "num" in value:
+            num = int(value["num"])
+            if num < 1:
+                raise ValueError(f"num must be at least 1, got {num!r}")
+            out = np.linspace(start, stop, num).tolist()
+        else:
+            step = float(value["step"])
+            if step <= 0 or (stop - start) / step > 1e6:
+                raise ValueError(f"step must be positive and give at most 1e6 points, got {step!r}")
+            out = np.arange(start, stop + 0.5 * step, step).round(12).tolist()
+    else:
+        raise ValueError(f"expected a number, a list or a range table, got {value!r}")
+    if not out:
+        raise ValueError("the axis is empty; give at least one value")
+    if any(not math.isfinite(x) for x in out):
+        raise ValueError(f"values must be finite, got {out!r}")
+    if len(set(out)) != len(out):
+        raise ValueError(f"values repeat: {out!r}; give each value once")
+    return out
+
+
+class GeometryAxis(_Strict):
+    #: template parameter to vary (nm)
+    parameter: str
+    values: Any
+
+    @field_validator("values")
+    @classmethod
+    def _vals(cls, v):
+        vals = _axis_values(v, "geometry", "nm")
+        if any(x <= 0 for x in vals):
+            raise ValueError(f"geometry values are lengths in nm and must be positive, got {vals!r}")
+        return vals
+
+
+class SweepSection(_Strict):
+    energy: Any = 0.0
+    gate_voltage: Any = 0.0
+    b_perp: Any = 0.0
+    disorder_strength: Any = 1.0
+    geometry: GeometryAxis | None = None
+
+    @field_validator("energy", "gate_voltage", "b_perp", "disorder_strength")
+    @classmethod
+    def _vals(cls, v, info):
+        vals = _axis_values(v, info.field_name, AXES[info.field_name])
+        limits = {"energy": (500, "meV (did you give eV or ueV?)"),
+                  "gate_voltage": (1000, "V"), "b_perp": (100, "T"),
+                  "disorder_strength": (1e3, "(a dimensionless multiplier)")}
+        lim, unit = limits[info.field_name]
+        bad = [x for x in vals if abs(x) > lim]
+        if bad:
+            raise ValueError(f"{bad[0]!r} is outside +-{lim:g} {unit}")
+        if info.field_name == "disorder_strength" and any(x < 0 for x in vals):
+            raise ValueError(f"disorder strengths are non-negative multipliers, got {vals!r}")
+        return vals
+
+
+class MeasureSection(_Strict):
+    #: named measurements: "R14,23", "G14", "R(src,drn;vp,vm)", "G(src,drn)"
+    report: list[str] = Field(min_length=1)
+
+    @field_validator("report")
+    @classmethod
+    def _parse(cls, v):
+        from .landauer import parse_measurement
+
+        for label in v:
+            parse_measurement(label)  # raises with the accepted forms
+        if len(set(v)) != len(v):
+            raise ValueError(f"measurements repeat: {v!r}")
+        return v
+
+
+class ExecutionSection(_Strict):
+    #: worker processes (0: one per core)
+    workers: int = Field(default=0, ge=0, le=4096)
+    #: sweep points per task (0: all (field, gate, energy) points of one sample in one task)
+    batch: int = Field(default=0, ge=0)
+    #: reuse lead modes across realisations (Kwant precalculate)
+    precalculate_leads: bool = True
+
+
+class SweepConfig(_Strict):
+    run: RunSection
+    device: DeviceSection
+    lattice: LatticeSection
+    material: MaterialSection
+    contacts: ContactSection = ContactSection()
+    gates: GateSection = GateSection()
+    disorder: list[DisorderTerm] = []
+    sweep: SweepSection = SweepSection()
+    measure: MeasureSection
+    execution: ExecutionSection = ExecutionSection()
+    #: directory of the config file (resolves relative geometry paths); not part of the file
+    base_dir: str = Field(default=".", exclude=True)
+    #: the exact text the config was read from
+    source_text: str = Field(default="", exclude=True)
+
+    @property
+    def axes(self) -> dict[str, list[float]]:
+        """Sweep axes in storage order; a geometry axis of one nominal value when not swept."""
+        geo = self.sweep.geometry.values if self.sweep.geometry else [0.0]
+        return {
+            "geometry": list(geo),
+            "disorder_strength": list(self.sweep.disorder_strength),
+            "b_perp": list(self.sweep.b_perp),
+            "gate_voltage": list(self.sweep.gate_voltage),
+            "energy": list(self.sweep.energy),
+        }
+
+    @property
+    def run_dir(self) -> Path:
+        return Path(self.run.directory.format(name=self.run.name))
+
+    @property
+    def needs_field(self) -> bool:
+        return any(b != 0 for b in self.sweep.b_perp)
+
+
+_SECTION_DOCS = {
+    "run": "name, seed, realisations, directory",
+    "device": "template or file, parameters, layer_map",
+}
+
+
+def _nearest_key(loc: tuple, model_fields: list[str]) -> str:
+    near = difflib.get_close_matches(str(loc[-1]), model_fields, n=1, cutoff=0.5)
+    return f" Did you mean {near[0]!r}?" if near else f" Valid keys here: {', '.join(model_fields)}."
+
+
+def _fields_at(loc: tuple) -> list[str]:
+    """Field names of the model at a location (for suggestions)."""
+    model: Any = SweepConfig
+    for part in loc[:-1]:
+        if isinstance(part, int):
+            continue
+        fields = getattr(model, "model_fields", {})
+        if part in fields:
+            ann = fields[part].annotation
+            model = ann if isinstance(ann, type) and issubclass(ann, BaseModel) else None
+            if model is None:
+                # disorder terms: suggest across all term kinds
+                return sorted({f for m in (AndersonTerm, SmoothTerm, MagneticTerm, RoughnessTerm)
+                               for f in m.model_fields})
+        elif part in ("anderson", "smooth", "magnetic", "roughness"):
+            model = {"anderson": AndersonTerm, "smooth": SmoothTerm,
+                     "magnetic": MagneticTerm, "roughness": RoughnessTerm}[part]
+    return list(getattr(model, "model_fields", {}))
+
+
+def _where(loc: tuple) -> str:
+    parts = [p for p in loc if p not in ("anderson", "smooth", "magnetic", "roughness")]
+    if not parts:
+        return "top level"
+    keys = []
+    for p in parts:
+        keys.append(f"[{p}]" if isinstance(p, int) else str(p))
+    return ".".join(keys).replace(".[", "[")
+
+
+def _translate(err: ValidationError, source: str) -> ConfigError:
+    lines = []
+    for e in err.errors():
+        loc = tuple(e["loc"])
+        where = _where(loc)
+        if e["type"] == "extra_forbidden":
+            lines.append(f"{source}: unknown key '{where}'.{_nearest_key(loc, _fields_at(loc))}")
+        elif e["type"] == "missing":
+            lines.append(f"{source}: missing key '{where}': add it (see configs/ for examples)")
+        else:
+            msg = e["msg"].removeprefix("Value error, ")
+            lines.append(f"{source}: '{where}' = {e.get('input')!r}: {msg}")
+    return ConfigError("invalid configuration:\n  " + "\n  ".join(lines))
+
+
+def parse_config(text: str, *, source: str = "<config>", base_dir: str | Path = ".") -> SweepConfig:
+    """Validate TOML text into a :class:`SweepConfig` (raises :class:`ConfigError`)."""
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(f"{source}: not valid TOML: {exc}") from None
+    data = dict(data)
+    try:
+        cfg = SweepConfig.model_validate(data | {"base_dir": str(base_dir), "source_text": text})
+    except ValidationError as exc:
+        raise _translate(exc, source) from None
+    _check_cross(cfg, source)
+    return cfg
+
+
+def load_config(path: str | Path) -> SweepConfig:
+    """Read and validate a sweep configuration file."""
+    path = Path(path)
+    if not path.is_file():
+        raise ConfigError(f"configuration file {str(path)!r} does not exist; see configs/ for examples")
+    return parse_config(path.read_text(), source=str(path), base_dir=path.parent)
+
+
+def _check_cross(cfg: SweepConfig, source: str) -> None:
+    """Checks that span sections (template parameters, swept parameter, gates)."""
+    from .geometry import TEMPLATES
+
+    dev = cfg.device
+    if dev.template is not None:
+        if dev.template not in TEMPLATES:
+            near = difflib.get_close_matches(dev.template, TEMPLATES, n=1)
+            hint = f" Did you mean {near[0]!r}?" if near else ""
+            raise ConfigError(
+                f"{source}: 'device.template' = {dev.template!r} is not a template.{hint} "
+                f"Templates: {', '.join(TEMPLATES)}"
+            )
+        sig = inspect.signature(TEMPLATES[dev.template])
+        allowed = [p for p in sig.parameters if p != "name"]
+        for key in dev.parameters:
+            if key not in allowed:
+                near = difflib.get_close_matches(key, allowed, n=1)
+                hint = f" Did you mean {near[0]!r}?" if near else ""
+                raise ConfigError(
+                    f"{source}: unknown parameter 'device.parameters.{key}' of template "
+                    f"{dev.template!r}.{hint} Parameters: {', '.join(allowed)}"
+                )
+        missing = [p for p in allowed if p not in dev.parameters
+                   and sig.parameters[p].default is inspect.Parameter.empty
+                   and not (cfg.sweep.geometry and cfg.sweep.geometry.parameter == p)]
+        if missing:
+            raise ConfigError(
+                f"{source}: template {dev.template!r} needs 'device.parameters' "
+                f"{', '.join(missing)} (nm)"
+            )
+        if cfg.sweep.geometry and cfg.sweep.geometry.parameter not in allowed:
+            raise ConfigError(
+                f"{source}: 'sweep.geometry.parameter' = {cfg.sweep.geometry.parameter!r} is not a "
+                f"parameter of template {dev.template!r} ({', '.join(allowed)})"
+            )
+    elif cfg.sweep.geometry is not None:
+        raise ConfigError(
+            f"{source}: 'sweep.geometry' varies a template parameter, but the device is a file "
+            f"({dev.file!r}); use a template or drop the geometry axis"
+        )
+    if dev.file is not None and not (Path(cfg.base_dir) / dev.file).is_file():
+        raise ConfigError(
+            f"{source}: 'device.file' = {dev.file!r} does not exist (looked in "
+            f"{str(Path(cfg.base_dir) / dev.file)!r}); paths are relative to the config file"
+        )
+    if any(v != 0 for v in cfg.sweep.gate_voltage) and cfg.gates.lever_arm == 0:
+        raise ConfigError(
+            f"{source}: 'sweep.gate_voltage' is swept but 'gates.lever_arm' is 0 meV/V, so the "
+            f"gate would do nothing; set the lever arm (meV per volt)"
+        )
+    cfg.material.parameters()  # validates the BHZ set (raises ModelError with the fix)
+
+
+def config_hash(cfg: SweepConfig) -> str:
+    """SHA-256 of everything that determines the numbers in the sample store.
+
+    The run name, directory and execution settings are excluded: they do not change a
+    single sample, so a run may be renamed or rerun with more workers and still resume.
+    """
+    data = cfg.model_dump(mode="json", exclude={"execution": True, "run": {"name", "directory"}})
+    text = repr(sorted(_flatten(data)))
+    return hashlib.sha256(text.encode()).hexdigest()
+
+
+def _flatten(d: Any, prefix: str = ""):
+    if isinstance(d, dict):
+        for k, v in d.items():
+            yield from _flatten(v, f"{prefix}.{k}" if prefix else str(k))
+    elif isinstance(d, list):
+        for i, v in enumerate(d):
+            yield from _flatten(v, f"{prefix}[{i}]")
+    else:
+        yield (prefix, repr(d))

@@ -1,0 +1,352 @@
+"""Execution: spread a sweep's disorder realisations over Dask workers and store the samples.
+
+Work unit (a *task*): one disorder realisation at one geometry and one disorder strength,
+solved at every (field, gate voltage, energy) point of the sweep. The disorder of a sample is
+a function of (root seed, realisation index, lattice site) only (see
+:mod:`pipeline.disorder`), so it is the same fixed sample across energy, gate and field --
+as in a real device swept in gate voltage -- and the numbers do not depend on task order,
+batching or worker count.
+
+Each worker process keeps what is expensive to make and independent of the realisation:
+
+* the finalized Kwant system of each geometry (built once per worker);
+* lead modes per (geometry, energy, field) via Kwant's ``precalculate`` (leads are clean and
+  ungated, so a gate sweep needs them only once per energy).
+
+Workers return small arrays; the driver alone writes them to the Zarr store as tasks
+finish, so Zarr writes stay off the workers' critical path and there is a single writer.
+At most a bounded window of tasks is in flight, which also bounds what a killed run loses.
+"""
+
+from __future__ import annotations
+
+import os
+import sys
+import time
+from collections import OrderedDict
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from .config import SweepConfig, config_hash
+from .errors import HelisweepError, TransportError
+from .store import STATUS_DONE, STATUS_FAILED, SampleStore, TaskResult
+
+__all__ = ["device_for", "system_for", "run_task", "run_sweep", "validate_run", "local_client"]
+
+_SYSTEM_CACHE: "OrderedDict[tuple, object]" = OrderedDict()
+_PRECALC_CACHE: "OrderedDict[tuple, object]" = OrderedDict()
+_MAX_SYSTEMS = 4
+_MAX_PRECALC = 256
+
+
+# --------------------------------------------------------------------------- devices & systems
+def device_for(cfg: SweepConfig, geometry_index: int):
+    """The device at one point of the geometry axis (a template or a geometry file)."""
+    from .geometry import TEMPLATES
+    from .geometry_io import load_device
+
+    dev = cfg.device
+    if dev.file is not None:
+        layer_map = {k: tuple(v) for k, v in dev.layer_map.items()} if dev.layer_map else None
+        return load_device(Path(cfg.base_dir) / dev.file, layer_map=layer_map)
+    params = dict(dev.parameters)
+    if cfg.sweep.geometry is not None:
+        params[cfg.sweep.geometry.parameter] = cfg.axes["geometry"][geometry_index]
+    return TEMPLATES[dev.template](**params, name=cfg.run.name)
+
+
+def _system_key(cfg: SweepConfig, geometry_index: int) -> tuple:
+    return (config_hash(cfg), geometry_index)
+
+
+def system_for(cfg: SweepConfig, geometry_index: int):
+    """The finalized system of a geometry, built once per process and then reused."""
+    from .mesh import build_system
+
+    key = _system_key(cfg, geometry_index)
+    if key in _SYSTEM_CACHE:
+        _SYSTEM_CACHE.move_to_end(key)
+        return _SYSTEM_CACHE[key]
+    device = device_for(cfg, geometry_index)
+    dsys = build_system(
+        device,
+        cfg.material.parameters(),
+        cfg.lattice.constant,
+        contact_doping=cfg.contacts.doping,
+        with_field=cfg.needs_field,
+    )
+    _SYSTEM_CACHE[key] = dsys
+    while len(_SYSTEM_CACHE) > _MAX_SYSTEMS:
+        _SYSTEM_CACHE.popitem(last=False)
+    return dsys
+
+
+def _lead_params(dsys, b_perp: float) -> dict:
+    """Params the leads need (no onsite stack): field and lead Peierls phases."""
+    if not dsys.with_field:
+        return {"onsite_stack": None}
+    out = {"b_perp": float(b_perp), "onsite_stack": None}
+    out.update(dsys.peierls_phases(b_perp))
+    return out
+
+
+def _precalculated(cfg: SweepConfig, geometry_index: int, dsys, energy: float, b_perp: float):
+    if not cfg.execution.precalculate_leads:
+        return dsys.fsyst
+    key = _system_key(cfg, geometry_index) + (float(energy), float(b_perp))
+    if key in _PRECALC_CACHE:
+        _PRECALC_CACHE.move_to_end(key)
+        return _PRECALC_CACHE[key]
+    fs = dsys.fsyst.precalculate(energy, params=_lead_params(dsys, b_perp))
+    _PRECALC_CACHE[key] = fs
+    while len(_PRECALC_CACHE) > _MAX_PRECALC:
+        _PRECALC_CACHE.popitem(last=False)
+    return fs
+
+
+def _disorder_terms(cfg: SweepConfig):
+    from . import disorder as dis
+
+    out = []
+    for term in cfg.disorder:
+        if term.kind == "anderson":
+            out.append(dis.Anderson(width=term.width))
+        elif term.kind == "smooth":
+            out.append(dis.SmoothPotential(term.amplitude, term.correlation_length))
+        elif term.kind == "magnetic":
+            out.append(dis.MagneticExchange(term.inplane, term.out_of_plane, term.density, term.aligned))
+        elif term.kind == "roughness":
+            out.append(dis.EdgeRoughness(term.amplitude, term.correlation_length))
+    return out
+
+
+def _gate_potentials(cfg: SweepConfig, device, voltage: float) -> dict[str, float]:
+    """Potential energy (meV) of each driven gate: U = -lever_arm * V_gate."""
+    driven = cfg.gates.driven if cfg.gates.driven is not None else list(device.gate_names)
+    return {g: -cfg.gates.lever_arm * voltage for g in driven}
+
+
+# --------------------------------------------------------------------------- one task
+def run_task(cfg: SweepConfig, key: tuple[int, int, int]) -> TaskResult:
+    """Solve one realisation at one geometry and strength for all (field, gate, energy) points."""
+    from .disorder import realise
+    from .landauer import parse_measurement
+    from .transport import transmission_matrix
+
+    t0 = time.perf_counter()
+    r, g, s = key
+    axes = cfg.axes
+    dsys = system_for(cfg, g)
+    names = dsys.contact_names
+    n = len(names)
+    measurements = [parse_measurement(m) for m in cfg.measure.report]
+    nb, nv, ne = len(axes["b_perp"]), len(axes["gate_voltage"]), len(axes["energy"])
+    out = TaskResult(
+        transmission=np.full((nb, nv, ne, n, n), np.nan),
+        modes=np.zeros((nb, nv, ne, n), dtype=np.int16),
+        measurements=np.full((nb, nv, ne, len(measurements)), np.nan),
+        status=np.zeros((nb, nv, ne), dtype=np.int8),
+        failures=[],
+    )
+    potential, extra = realise(
+        _disorder_terms(cfg), dsys.mesh, seed=cfg.run.seed, realisation=r,
+        strength=axes["disorder_strength"][s], outline=dsys.device.outline,
+        contacts=dsys.device.contacts,
+    )
+    for ib, b in enumerate(axes["b_perp"]):
+        for iv, vg in enumerate(axes["gate_voltage"]):
+            params = dsys.params(
+                b_perp=b, potential=potential, onsite_extra=extra,
+                gate_potentials=_gate_potentials(cfg, dsys.device, vg),
+            )
+            for ie, energy in enumerate(axes["energy"]):
+                try:
+                    fs = _precalculated(cfg, g, dsys, energy, b)
+                    res = transmission_matrix(dsys, energy, params, fsyst=fs)
+                except Exception as exc:  # recorded per sample; the sweep goes on
+                    out.status[ib, iv, ie] = STATUS_FAILED
+                    out.failures.append(((ib, iv, ie), f"{type(exc).__name__}: {exc}"[:500]))
+                    continue
+                out.transmission[ib, iv, ie] = res.matrix
+                out.modes[ib, iv, ie] = res.modes
+                for im, m in enumerate(measurements):
+                    try:
+                        out.measurements[ib, iv, ie, im] = m.evaluate(res.matrix, names)
+                    except TransportError:
+                        pass  # an ill-posed measurement for this sample stays NaN
+                out.status[ib, iv, ie] = STATUS_DONE
+    out.seconds = time.perf_counter() - t0
+    return out
+
+
+# --------------------------------------------------------------------------- checks before compute
+def validate_run(cfg: SweepConfig) -> tuple[str, ...]:
+    """Everything that can be checked before compute: geometry, mesh, open lead modes.
+
+    Returns the contact names. Raises a :class:`HelisweepError` subclass with the fix.
+    """
+    from .geometry import validate_device
+    from .transport import open_modes
+
+    names = None
+    for g in range(len(cfg.axes["geometry"])):
+        device = device_for(cfg, g)
+        validate_device(device, cfg.lattice.constant)
+        if names is not None and device.contact_names != names:
+            raise HelisweepError(
+                f"the geometry sweep changes the contacts ({names} -> {device.contact_names}); "
+                f"a sweep must keep the same terminals"
+            )
+        names = device.contact_names
+        for gate in cfg.gates.driven or []:
+            if gate not in device.gate_names:
+                raise HelisweepError(
+                    f"'gates.driven' names gate {gate!r}, which device {device.name!r} does not "
+                    f"have (gates: {', '.join(device.gate_names) or 'none'})"
+                )
+    if len(names) < 2:
+        raise HelisweepError(f"transport needs at least two contacts; the device has {len(names)}")
+    for label in cfg.measure.report:
+        from .landauer import parse_measurement
+
+        parse_measurement(label).indices(names)
+    dsys = system_for(cfg, 0)
+    for b in cfg.axes["b_perp"]:
+        for energy in cfg.axes["energy"]:
+            modes = open_modes(dsys, energy, _lead_params(dsys, b))
+            if np.any(modes == 0):
+                closed = [names[i] for i in np.flatnonzero(modes == 0)]
+                raise TransportError(
+                    f"at E = {energy!r} meV and B = {b!r} T lead(s) {closed} have no open mode, "
+                    f"so no current can enter there. Give the contacts a doping (contacts.doping, "
+                    f"tens of meV, metallic contacts) or choose energies inside a band of the leads"
+                )
+    return names
+
+
+# --------------------------------------------------------------------------- driver
+def local_client(workers: int = 0):
+    """A Dask client on a LocalCluster: one single-threaded process per core.
+
+    BLAS and OpenMP are limited to one thread per worker (two threads per process gained
+    nothing here and halved throughput when processes shared the cores).
+    """
+    from dask.distributed import Client, LocalCluster
+
+    for var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
+        os.environ[var] = "1"
+    n = workers or os.cpu_count() or 1
+    cluster = LocalCluster(n_workers=n, threads_per_worker=1, processes=True,
+                           dashboard_address=":0", silence_logs=40)
+    return Client(cluster)
+
+
+@dataclass
+class _Progress:
+    total: int
+    stream: object = sys.stderr
+    enabled: bool = True
+
+    def __post_init__(self):
+        self.done = 0
+        self.t0 = time.monotonic()
+        self._last = 0.0
+
+    def update(self, n: int = 1) -> None:
+        self.done += n
+        now = time.monotonic()
+        if not self.enabled or (now - self._last < 0.5 and self.done < self.total):
+            return
+        self._last = now
+        rate = self.done / max(now - self.t0, 1e-9)
+        eta = (self.total - self.done) / rate if rate > 0 else float("inf")
+        width = 30
+        fill = int(width * self.done / max(self.total, 1))
+        self.stream.write(
+            f"\r[{'#' * fill}{'.' * (width - fill)}] {self.done}/{self.total} samples "
+            f"{rate:.2f}/s ETA {eta:,.0f} s "
+        )
+        if self.done >= self.total:
+            self.stream.write("\n")
+        self.stream.flush()
+
+
+def run_sweep(
+    cfg: SweepConfig,
+    *,
+    client=None,
+    store_path: str | Path | None = None,
+    fresh: bool = False,
+    progress: bool = True,
+    max_in_flight: int | None = None,
+) -> SampleStore:
+    """Run (or resume) a sweep and return its store.
+
+    Bad input is refused before any compute (:func:`validate_run`). With ``client=None`` a
+    local cluster is started for the duration of the call. Rerunning the same command
+    computes only the samples still missing; a different configuration is refused unless
+    ``fresh`` (the old store is then moved aside, not deleted).
+    """
+    from dask.distributed import as_completed
+
+    from .environment import describe
+
+    names = validate_run(cfg)
+    path = Path(store_path) if store_path else cfg.run_dir / "samples.zarr"
+    own_client = client is None
+    if own_client:
+        client = local_client(cfg.execution.workers)
+    try:
+        n_workers = len(client.scheduler_info().get("workers", {})) or 1
+        facts = describe()
+        store = SampleStore.open_for_run(
+            path, cfg, names, fresh=fresh,
+            provenance={"workers": n_workers, "config_hash": config_hash(cfg), **facts},
+        )
+        pending = store.pending_tasks(cfg.run.realisations)
+        per_task = int(np.prod([len(v) for k, v in cfg.axes.items()
+                                if k in ("b_perp", "gate_voltage", "energy")]))
+        counts = store.counts()
+        if progress:
+            print(f"store {path}: {counts['done']} samples done, {len(pending)} tasks "
+                  f"({len(pending) * per_task} samples) to go on {n_workers} worker(s)",
+                  file=sys.stderr)
+            if getattr(client, "dashboard_link", None):
+                print(f"Dask dashboard: {client.dashboard_link}", file=sys.stderr)
+        bar = _Progress(len(pending) * per_task, enabled=progress)
+        window = max_in_flight or 4 * n_workers
+        cfg_future = client.scatter(cfg, broadcast=True)
+        queue = list(pending)
+        futures = {}
+        ac = as_completed()
+
+        def submit_next():
+            key = queue.pop(0)
+            fut = client.submit(run_task, cfg_future, key, retries=2, pure=False,
+                                key=f"helisweep-{key[0]}-{key[1]}-{key[2]}-{time.monotonic_ns()}")
+            futures[fut] = key
+            ac.add(fut)
+
+        while queue and len(futures) < window:
+            submit_next()
+        failed = 0
+        for fut in ac:
+            key = futures.pop(fut)
+            result = fut.result()
+            store.write_task(key, result)
+            failed += len(result.failures)
+            bar.update(per_task)
+            if queue:
+                submit_next()
+        store.finish_session({"tasks": len(pending), "failed_samples": failed})
+        if progress and failed:
+            print(f"{failed} sample(s) failed; reasons are in the store's 'failures' attribute",
+                  file=sys.stderr)
+        return store
+    finally:
+        if own_client:
+            cluster = client.cluster
+            client.close()
+            cluster.close()

@@ -1,0 +1,260 @@
+"""The sample store: one Zarr (v3) group per run holding every disorder sample.
+
+Layout (``xarray.open_zarr(path)`` reads it; dims and units in attrs)::
+
+    transmission  (realisation, geometry, disorder_strength, b_perp, gate_voltage, energy,
+                   lead_to, lead_from)   float64   T[i, j]: from contact j to contact i
+    modes         (..., lead)            int16     open modes per lead (0 until computed)
+    measurements  (..., measurement)     float64   the requested R (h/e^2) and G (e^2/h)
+    status        (realisation, ..., energy) int8  0 missing, 1 done, 2 failed
+
+Chunks hold one *task*: one realisation at one geometry and disorder strength, all field,
+gate and energy points. Every chunk carries a CRC32C checksum (a Zarr v3 codec), so a
+damaged chunk raises on read instead of being averaged silently. Chunks are written by
+Zarr's local store through a temporary file and a rename, and a task's ``status`` is written
+after its data, so a killed run leaves complete tasks or missing ones, never half-written
+ones; failure reasons go to the group attributes.
+
+Stores never hold executable content: plain numeric and string arrays and JSON attributes
+(no pickle codecs, no object arrays).
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import json
+import shutil
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import zarr
+from zarr.codecs import Crc32cCodec, ZstdCodec
+
+from .config import AXES, SweepConfig, config_hash
+from .errors import StoreError
+
+__all__ = ["SampleStore", "SWEEP_DIMS", "STATUS_MISSING", "STATUS_DONE", "STATUS_FAILED"]
+
+SWEEP_DIMS = ("realisation",) + tuple(AXES)
+STATUS_MISSING, STATUS_DONE, STATUS_FAILED = 0, 1, 2
+_FORMAT = "helisweep-samples/1"
+
+
+def _codecs():
+    return [ZstdCodec(level=3), Crc32cCodec()]
+
+
+def _now() -> str:
+    return _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
+
+
+@dataclass
+class SampleStore:
+    """Handle on a run's Zarr group (see module docstring)."""
+
+    path: Path
+    group: zarr.Group
+
+    # ------------------------------------------------------------------ opening
+    @classmethod
+    def open_for_run(
+        cls,
+        path: str | Path,
+        cfg: SweepConfig,
+        contact_names: tuple[str, ...],
+        *,
+        provenance: dict,
+        fresh: bool = False,
+    ) -> "SampleStore":
+        """Create the store, or reopen it to resume the same configuration.
+
+        A store written by a different configuration is refused unless ``fresh`` is set;
+        then the old store is moved aside (``samples.zarr.replaced-<time>``), never deleted.
+        Raising the number of realisations grows the store; samples already there are kept.
+        """
+        path = Path(path)
+        digest = config_hash(cfg)
+        if path.exists():
+            try:
+                group = zarr.open_group(str(path), mode="r+")
+                old = dict(group.attrs)
+            except Exception as exc:  # not a Zarr group at all
+                raise StoreError(
+                    f"{str(path)!r} exists but is not a readable sample store ({exc}); move it "
+                    f"away or choose another run directory"
+                ) from exc
+            if old.get("format") != _FORMAT:
+                raise StoreError(
+                    f"{str(path)!r} is not a helisweep sample store (format {old.get('format')!r}); "
+                    f"choose another run directory"
+                )
+            if old.get("config_hash") != digest:
+                if not fresh:
+                    raise StoreError(
+                        f"the store {str(path)!r} was written by a different configuration "
+                        f"(hash {str(old.get('config_hash'))[:12]} vs {digest[:12]} now). Resuming "
+                        f"would mix incompatible samples. Restore the old config, choose another "
+                        f"run directory, or pass --fresh to move the old store aside and start anew"
+                    )
+                aside = path.with_name(path.name + ".replaced-" + _now().replace(":", ""))
+                shutil.move(str(path), str(aside))
+            else:
+                store = cls(path, group)
+                store._grow(cfg.run.realisations)
+                store._log_session(provenance)
+                return store
+        store = cls._create(path, cfg, contact_names, digest, provenance)
+        store._log_session(provenance)
+        return store
+
+    @classmethod
+    def open(cls, path: str | Path, mode: str = "r") -> "SampleStore":
+        path = Path(path)
+        if not path.exists():
+            raise StoreError(f"no sample store at {str(path)!r}; run the sweep first")
+        group = zarr.open_group(str(path), mode=mode)
+        if group.attrs.get("format") != _FORMAT:
+            raise StoreError(f"{str(path)!r} is not a helisweep sample store")
+        return cls(path, group)
+
+    @classmethod
+    def _create(cls, path, cfg, contact_names, digest, provenance) -> "SampleStore":
+        import xarray as xr
+        import dask.array as da
+
+        axes = cfg.axes
+        nr = cfg.run.realisations
+        sweep_shape = (nr,) + tuple(len(v) for v in axes.values())
+        n = len(contact_names)
+        labels = list(cfg.measure.report)
+        task_chunk = (1, 1, 1) + sweep_shape[3:]
+        coords = {"realisation": np.arange(nr, dtype=np.int64)}
+        coords.update({k: np.asarray(v, dtype=float) for k, v in axes.items()})
+        names = np.array(contact_names, dtype=object)
+        coords.update({"lead_to": names, "lead_from": names, "lead": names,
+                       "measurement": np.array(labels, dtype=object)})
+
+        def lazy(shape, dtype, fill):
+            return da.full(shape, fill, dtype=dtype, chunks=-1)
+
+        dims = SWEEP_DIMS
+        from .landauer import parse_measurement
+
+        units = [parse_measurement(m).unit for m in labels]
+        ds = xr.Dataset(
+            {
+                "transmission": (dims + ("lead_to", "lead_from"),
+                                 lazy(sweep_shape + (n, n), "f8", np.nan),
+                                 {"units": "1", "long_name": "transmission probability from lead_from to lead_to (diagonal: reflection)"}),
+                "modes": (dims + ("lead",), lazy(sweep_shape + (n,), "i2", 0),
+                          {"units": "1", "long_name": "open modes per lead"}),
+                "measurements": (dims + ("measurement",), lazy(sweep_shape + (len(labels),), "f8", np.nan),
+                                 {"long_name": "requested transport measurements", "units_by_measurement": units}),
+                "status": (dims, lazy(sweep_shape, "i1", STATUS_MISSING),
+                           {"long_name": "sample status", "flag_values": [0, 1, 2],
+                            "flag_meanings": "missing done failed"}),
+            },
+            coords=coords,
+        )
+        for k, unit in AXES.items():
+            ds[k].attrs["units"] = unit
+        ds["energy"].attrs["long_name"] = "Fermi energy"
+        ds["gate_voltage"].attrs["long_name"] = "gate voltage"
+        ds["b_perp"].attrs["long_name"] = "perpendicular magnetic field"
+        ds["disorder_strength"].attrs["long_name"] = "disorder strength multiplier"
+        ds["geometry"].attrs.update(
+            long_name="swept geometry parameter",
+            parameter=cfg.sweep.geometry.parameter if cfg.sweep.geometry else "",
+        )
+        enc = {
+            "transmission": {"chunks": task_chunk + (n, n)},
+            "modes": {"chunks": task_chunk + (n,)},
+            "measurements": {"chunks": task_chunk + (len(labels),)},
+            "status": {"chunks": task_chunk},
+        }
+        for v in enc.values():
+            v["compressors"] = _codecs()
+        ds.attrs.update(
+            format=_FORMAT,
+            config_hash=digest,
+            config_text=cfg.source_text,
+            run_name=cfg.run.name,
+            root_seed=cfg.run.seed,
+            created=_now(),
+            sessions=[],
+            failures=[],
+        )
+        path.parent.mkdir(parents=True, exist_ok=True)
+        ds.to_zarr(str(path), mode="w-", compute=False, encoding=enc, zarr_format=3, consolidated=False)
+        group = zarr.open_group(str(path), mode="r+")
+        return cls(path, group)
+
+    def _grow(self, realisations: int) -> None:
+        have = self.group["realisation"].shape[0]
+        if realisations <= have:
+            return
+        for name in ("transmission", "modes", "measurements", "status"):
+            arr = self.group[name]
+            arr.resize((realisations,) + arr.shape[1:])
+        coord = self.group["realisation"]
+        coord.resize((realisations,))
+        coord[have:] = np.arange(have, realisations)
+
+    def _log_session(self, provenance: dict) -> None:
+        sessions = list(self.group.attrs.get("sessions", []))
+        sessions.append({"started": _now(), **provenance})
+        self.group.attrs["sessions"] = sessions
+
+    # ------------------------------------------------------------------ reading
+    @property
+    def shape(self) -> tuple[int, ...]:
+        return tuple(self.group["status"].shape)
+
+    def status(self) -> np.ndarray:
+        """Status of every sample (see module docstring), shape of the sweep grid."""
+        return self.group["status"][...]
+
+    def pending_tasks(self, realisations: int | None = None) -> list[tuple[int, int, int]]:
+        """(realisation, geometry, strength) tasks with any sample still missing."""
+        st = self.status()
+        if realisations is not None:
+            st = st[:realisations]
+        missing = (st == STATUS_MISSING).reshape(st.shape[:3] + (-1,)).any(axis=-1)
+        return [tuple(int(x) for x in idx) for idx in np.argwhere(missing)]
+
+    def counts(self) -> dict[str, int]:
+        st = self.status()
+        return {"done": int((st == STATUS_DONE).sum()), "failed": int((st == STATUS_FAILED).sum()),
+                "missing": int((st == STATUS_MISSING).sum()), "total": int(st.size)}
+
+    # ------------------------------------------------------------------ writing
+    def write_task(self, key: tuple[int, int, int], result: "TaskResult") -> None:
+        """Write one task's samples; its status goes last, so a kill leaves it missing."""
+        r, g, s = key
+        self.group["transmission"][r, g, s] = result.transmission
+        self.group["modes"][r, g, s] = result.modes
+        self.group["measurements"][r, g, s] = result.measurements
+        if result.failures:
+            failures = list(self.group.attrs.get("failures", []))
+            failures += [{"index": [r, g, s, *idx], "reason": why} for idx, why in result.failures]
+            self.group.attrs["failures"] = failures
+        self.group["status"][r, g, s] = result.status
+
+    def finish_session(self, summary: dict) -> None:
+        sessions = list(self.group.attrs.get("sessions", []))
+        if sessions:
+            sessions[-1].update({"finished": _now(), **summary})
+        self.group.attrs["sessions"] = sessions
+
+
+@dataclass
+class TaskResult:
+    """What a worker returns for one task (small arrays, shipped back to the writer)."""
+
+    transmission: np.ndarray  # (nB, nV, nE, n, n)
+    modes: np.ndarray  # (nB, nV, nE, n)
+    measurements: np.ndarray  # (nB, nV, nE, m)
+    status: np.ndarray  # (nB, nV, nE) int8
+    failures: list  # [((b, v, e), reason)]
+    seconds: float = 0.0

@@ -1,0 +1,70 @@
+"""Scattering: a finalized device system and parameters -> the full transmission matrix.
+
+``T[i, j]`` is the total transmission probability from contact ``j`` to contact ``i`` summed
+over modes and spin (Kwant's ``transmission(to, from)``); the diagonal holds the total
+reflection probability. Together with the number of open modes per lead it is all the
+Landauer-Buttiker solver (:mod:`pipeline.landauer`) needs.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import kwant
+import numpy as np
+
+from .errors import TransportError
+from .mesh import DeviceSystem
+
+__all__ = ["Transmissions", "transmission_matrix", "open_modes"]
+
+
+@dataclass(frozen=True)
+class Transmissions:
+    """Result of one scattering solve."""
+
+    #: T[i, j]: transmission from contact j to contact i (diagonal: reflection)
+    matrix: np.ndarray
+    #: number of open (propagating) modes in each lead
+    modes: np.ndarray
+
+
+def open_modes(dsys: DeviceSystem, energy: float, params: dict, fsyst=None) -> np.ndarray:
+    """Number of propagating modes in each lead at ``energy`` (meV)."""
+    fsyst = dsys.fsyst if fsyst is None else fsyst
+    return np.array(
+        [lead.modes(energy, params=params)[0].velocities.size // 2 for lead in fsyst.leads]
+    )
+
+
+def transmission_matrix(
+    dsys: DeviceSystem, energy: float, params: dict, *, fsyst=None
+) -> Transmissions:
+    """Full transmission matrix between all contacts at Fermi energy ``energy`` (meV).
+
+    ``fsyst`` may be a version of ``dsys.fsyst`` with precalculated lead modes
+    (``fsyst.precalculate``). Raises :class:`TransportError` when a lead has no open mode
+    (no current can enter there), with the energy and the fix.
+    """
+    fsyst = dsys.fsyst if fsyst is None else fsyst
+    try:
+        smat = kwant.smatrix(fsyst, energy, params=params)
+    except Exception as exc:  # re-raised with the context a user needs
+        raise TransportError(
+            f"Kwant's scattering solve failed at E = {energy!r} meV on device "
+            f"{dsys.device.name!r}: {exc}"
+        ) from exc
+    n = len(fsyst.leads)
+    modes = np.array([smat.num_propagating(i) for i in range(n)])
+    closed = [dsys.contact_names[i] for i in range(n) if modes[i] == 0]
+    if closed:
+        raise TransportError(
+            f"lead(s) {closed!r} have no open mode at E = {energy!r} meV: no current can enter "
+            f"there. Use metallic contacts (contact_doping of tens of meV) or choose an energy "
+            f"where the lead bands are occupied"
+        )
+    T = np.empty((n, n))
+    for i in range(n):
+        for j in range(n):
+            T[i, j] = smat.transmission(i, j)
+    return Transmissions(T, modes)
