@@ -3,6 +3,7 @@
 Commands
 --------
 preview    device outline + preflight checks + mesh figure (no sweep)
+solve      one clean solve: transmissions, conductance matrix, chosen R_ij,kl
 preflight  the preflight checks for a sweep configuration's device
 run        run or resume a sweep into its Zarr store
 status     what a run's store holds and what is left
@@ -86,6 +87,39 @@ def _cmd_preview(args) -> int:
     return 0
 
 
+def _cmd_solve(args) -> int:
+    import numpy as np
+
+    from .geometry import validate_device
+    from .landauer import conductance_matrix, parse_measurement
+    from .mesh import build_system
+    from .transport import transmission_matrix
+
+    device = _device_from_args(args)
+    validate_device(device, args.lattice)
+    material = _material_from_args(args)
+    dsys = build_system(device, material, args.lattice, contact_doping=args.doping,
+                        with_field=args.field != 0)
+    res = transmission_matrix(dsys, args.energy, dsys.params(b_perp=args.field))
+    names = dsys.contact_names
+    np.set_printoptions(precision=5, suppress=True, linewidth=120)
+    print(f"{device.name}: {dsys.n_sites} sites, E = {args.energy} meV, B = {args.field} T, "
+          f"contacts {', '.join(names)} (clean model estimate)")
+    print("open modes per lead:", dict(zip(names, res.modes.tolist())))
+    print("transmission T[to, from]:")
+    print(res.matrix)
+    print("conductance matrix G (e^2/h):")
+    print(conductance_matrix(res.matrix))
+    from .constants import H_OVER_E2_OHM
+
+    for label in args.measure or []:
+        m = parse_measurement(label)
+        value = float(m.evaluate(res.matrix, names))
+        extra = f" = {value * H_OVER_E2_OHM:.1f} ohm" if m.kind == "R" else ""
+        print(f"{label} = {value:.6f} {m.unit}{extra}")
+    return 0
+
+
 def _cmd_preflight(args) -> int:
     from .config import load_config
     from .engine import device_for
@@ -155,6 +189,17 @@ def build_parser() -> argparse.ArgumentParser:
     q.add_argument("--lattice", type=float, default=5.0, help="lattice constant in nm (default 5)")
     q.add_argument("--out", default="device-preview.png", help="figure file (PNG; a PDF is written beside it)")
     q.set_defaults(func=_cmd_preview)
+
+    q = sub.add_parser("solve", help="one clean scattering solve: transmissions, G matrix, R_ij,kl")
+    q.add_argument("device", help="geometry file or template")
+    q.add_argument("--param", action="append", metavar="NAME=NM", help="template parameter in nm (repeatable)")
+    q.add_argument("--material", default="hgte-7.0nm")
+    q.add_argument("--lattice", type=float, default=5.0, help="lattice constant in nm")
+    q.add_argument("--energy", type=float, default=0.0, help="Fermi energy in meV")
+    q.add_argument("--field", type=float, default=0.0, help="perpendicular field in T")
+    q.add_argument("--doping", type=float, default=0.0, help="contact doping in meV (metallic contacts)")
+    q.add_argument("--measure", action="append", metavar="LABEL", help="e.g. R14,23 or G14 (repeatable)")
+    q.set_defaults(func=_cmd_solve)
 
     q = sub.add_parser("preflight", help="preflight checks for a sweep configuration")
     q.add_argument("config")

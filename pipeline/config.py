@@ -244,6 +244,8 @@ class GeometryAxis(_Strict):
 
 
 class SweepSection(_Strict):
+    model_config = ConfigDict(extra="forbid", frozen=True, validate_default=True)
+
     energy: Any = 0.0
     gate_voltage: Any = 0.0
     b_perp: Any = 0.0
@@ -464,10 +466,13 @@ def _check_cross(cfg: SweepConfig, source: str) -> None:
 def config_hash(cfg: SweepConfig) -> str:
     """SHA-256 of everything that determines the numbers in the sample store.
 
-    The run name, directory and execution settings are excluded: they do not change a
-    single sample, so a run may be renamed or rerun with more workers and still resume.
+    The run name, directory, number of realisations and execution settings are excluded:
+    they do not change a single sample (realisation r is the same sample whatever the total),
+    so a run may be renamed, extended with more realisations or rerun with more workers and
+    still resume.
     """
-    data = cfg.model_dump(mode="json", exclude={"execution": True, "run": {"name", "directory"}})
+    data = cfg.model_dump(mode="json",
+                          exclude={"execution": True, "run": {"name", "directory", "realisations"}})
     text = repr(sorted(_flatten(data)))
     return hashlib.sha256(text.encode()).hexdigest()
 

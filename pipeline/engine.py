@@ -281,13 +281,15 @@ def run_sweep(
     fresh: bool = False,
     progress: bool = True,
     max_in_flight: int | None = None,
+    max_tasks: int | None = None,
 ) -> SampleStore:
     """Run (or resume) a sweep and return its store.
 
     Bad input is refused before any compute (:func:`validate_run`). With ``client=None`` a
     local cluster is started for the duration of the call. Rerunning the same command
     computes only the samples still missing; a different configuration is refused unless
-    ``fresh`` (the old store is then moved aside, not deleted).
+    ``fresh`` (the old store is then moved aside, not deleted). ``max_tasks`` stops after
+    that many tasks (a partial run that a later call resumes).
     """
     from dask.distributed import as_completed
 
@@ -315,10 +317,12 @@ def run_sweep(
                   file=sys.stderr)
             if getattr(client, "dashboard_link", None):
                 print(f"Dask dashboard: {client.dashboard_link}", file=sys.stderr)
-        bar = _Progress(len(pending) * per_task, enabled=progress)
+        bar = _Progress(min(len(pending), max_tasks if max_tasks is not None else len(pending))
+                        * per_task, enabled=progress)
         window = max_in_flight or 4 * n_workers
         cfg_future = client.scatter(cfg, broadcast=True)
-        queue = list(pending)
+        queue = list(pending)[: max_tasks if max_tasks is not None else None]
+        n_tasks = len(queue)
         futures = {}
         ac = as_completed()
 
@@ -340,7 +344,7 @@ def run_sweep(
             bar.update(per_task)
             if queue:
                 submit_next()
-        store.finish_session({"tasks": len(pending), "failed_samples": failed})
+        store.finish_session({"tasks": n_tasks, "failed_samples": failed})
         if progress and failed:
             print(f"{failed} sample(s) failed; reasons are in the store's 'failures' attribute",
                   file=sys.stderr)

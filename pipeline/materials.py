@@ -75,11 +75,13 @@ PRESETS: dict[str, BHZParameters] = {
     # Inverted HgTe/CdTe well above the critical thickness (~6.3 nm).
     "hgte-7.0nm": BHZParameters(
         A=364.5, B=-686.0, C=0.0, D=-512.0, M=-10.0,
-        delta_bia=1.6, g_E=22.7, g_H=-1.21,
+        g_E=22.7, g_H=-1.21,
         name="HgTe/CdTe quantum well, 7.0 nm (inverted)",
         source=(
             "Koenig et al., J. Phys. Soc. Jpn. 77, 031007 (2008), Table I "
-            "(A, B, D, M); BIA Delta and g-factors from the same paper, from memory"
+            "(A, B, D, M); g-factors from the same paper, from memory. BIA is off by "
+            "default; the same paper estimates Delta ~ 1.6 meV (from memory): set "
+            "material.delta_bia to include it"
         ),
     ),
     # Normal (trivial) HgTe/CdTe well below the critical thickness.
