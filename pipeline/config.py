@@ -293,6 +293,37 @@ class ExecutionSection(_Strict):
     precalculate_leads: bool = True
 
 
+class ClusterSection(_Strict):
+    """Where to run: a local cluster (default) or Slurm through dask-jobqueue.
+
+    Unset keys fall back to the site defaults file and then to built-in defaults (resolved in
+    one place, :func:`pipeline.cluster.resolve_cluster_settings`).
+    """
+
+    #: "local" or "slurm"
+    kind: Literal["local", "slurm"] = "local"
+    partition: str | None = None
+    account: str | None = None
+    #: job walltime "HH:MM:SS" (or "D-HH:MM:SS")
+    walltime: str | None = Field(default=None, pattern=r"^(\d+-)?\d{1,3}:\d{2}:\d{2}$")
+    #: memory per job, e.g. "4GB"
+    memory: str | None = Field(default=None, pattern=r"^\d+(\.\d+)?\s*(KB|MB|GB|TB|KiB|MiB|GiB|TiB)$")
+    #: cores (= single-threaded worker processes) per job
+    cores: int | None = Field(default=None, ge=1, le=1024)
+    #: fixed number of jobs (omit for adaptive scaling)
+    jobs: int | None = Field(default=None, ge=1, le=10000)
+    adaptive_minimum: int | None = Field(default=None, ge=0)
+    adaptive_maximum: int | None = Field(default=None, ge=1)
+    #: extra "#SBATCH" directives, e.g. ["--qos=long", "--constraint=avx2"]
+    extra_directives: list[str] = []
+    #: network interface for the scheduler and workers, e.g. "ib0" or "lo"
+    interface: str | None = None
+    #: shared directory for logs, scheduler file and job scripts (visible to all nodes)
+    shared_directory: str | None = None
+    #: site defaults file (TOML with a [cluster] table); default ~/.config/helisweep/site.toml
+    site_defaults: str | None = None
+
+
 class SweepConfig(_Strict):
     run: RunSection
     device: DeviceSection
@@ -304,6 +335,7 @@ class SweepConfig(_Strict):
     sweep: SweepSection = SweepSection()
     measure: MeasureSection
     execution: ExecutionSection = ExecutionSection()
+    cluster: ClusterSection = ClusterSection()
     #: directory of the config file (resolves relative geometry paths); not part of the file
     base_dir: str = Field(default=".", exclude=True)
     #: the exact text the config was read from
@@ -466,13 +498,15 @@ def _check_cross(cfg: SweepConfig, source: str) -> None:
 def config_hash(cfg: SweepConfig) -> str:
     """SHA-256 of everything that determines the numbers in the sample store.
 
-    The run name, directory, number of realisations and execution settings are excluded:
+    The run name, directory, number of realisations, execution and cluster settings are
+    excluded:
     they do not change a single sample (realisation r is the same sample whatever the total),
     so a run may be renamed, extended with more realisations or rerun with more workers and
     still resume.
     """
     data = cfg.model_dump(mode="json",
-                          exclude={"execution": True, "run": {"name", "directory", "realisations"}})
+                          exclude={"execution": True, "cluster": True,
+                                   "run": {"name", "directory", "realisations"}})
     text = repr(sorted(_flatten(data)))
     return hashlib.sha256(text.encode()).hexdigest()
 

@@ -33,7 +33,15 @@ from .config import SweepConfig, config_hash
 from .errors import HelisweepError, TransportError
 from .store import STATUS_DONE, STATUS_FAILED, SampleStore, TaskResult
 
-__all__ = ["device_for", "system_for", "run_task", "run_sweep", "validate_run", "local_client"]
+__all__ = [
+    "device_for",
+    "system_for",
+    "run_task",
+    "run_sweep",
+    "validate_run",
+    "local_client",
+    "quantised_values",
+]
 
 _SYSTEM_CACHE: "OrderedDict[tuple, object]" = OrderedDict()
 _PRECALC_CACHE: "OrderedDict[tuple, object]" = OrderedDict()
@@ -55,6 +63,28 @@ def device_for(cfg: SweepConfig, geometry_index: int):
     if cfg.sweep.geometry is not None:
         params[cfg.sweep.geometry.parameter] = cfg.axes["geometry"][geometry_index]
     return TEMPLATES[dev.template](**params, name=cfg.run.name)
+
+
+def quantised_values(cfg: SweepConfig, geometry_index: int = 0) -> dict[str, float]:
+    """Ideal quantum spin Hall value of every requested measurement on the run's device.
+
+    Computed by the same Landauer-Buttiker solver from ideal helical-edge transmissions
+    (:func:`pipeline.landauer.helical_ring_transmissions`), e.g. 2 e^2/h for a two-terminal
+    strip and h/4e^2 for R14,23 on an H-bar. NaN where the ideal value is undefined.
+    """
+    from .errors import TransportError
+    from .geometry import perimeter_order
+    from .landauer import helical_ring_transmissions, parse_measurement
+
+    device = device_for(cfg, geometry_index)
+    T = helical_ring_transmissions(perimeter_order(device), len(device.contacts))
+    out = {}
+    for label in cfg.measure.report:
+        try:
+            out[label] = float(parse_measurement(label).evaluate(T, device.contact_names))
+        except TransportError:
+            out[label] = float("nan")
+    return out
 
 
 def _system_key(cfg: SweepConfig, geometry_index: int) -> tuple:

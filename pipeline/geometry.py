@@ -34,6 +34,7 @@ from shapely.validation import explain_validity
 from .errors import GeometryError
 
 __all__ = [
+    "perimeter_order",
     "Contact",
     "Gate",
     "Device",
@@ -862,6 +863,24 @@ def hall_bar(
 
 
 #: Parametric device templates by short name.
+def perimeter_order(device: Device) -> list[list[int]]:
+    """Contacts in the order a walk along each boundary ring meets them.
+
+    Returns one list of 0-based contact indices per ring (exterior first, then holes) that
+    carries contacts. An ideal helical edge connects each contact to its neighbours in this
+    order, which fixes the quantised value of every measurement (see
+    :func:`pipeline.landauer.helical_ring_transmissions`).
+    """
+    rings = [device.outline.exterior, *device.outline.interiors]
+    groups: dict[int, list[tuple[float, int]]] = {}
+    for k, contact in enumerate(device.contacts):
+        mid = shapely.Point(contact.midpoint)
+        dist = [ring.distance(mid) for ring in rings]
+        r = int(np.argmin(dist))
+        groups.setdefault(r, []).append((rings[r].project(mid), k))
+    return [[k for _, k in sorted(groups[r])] for r in sorted(groups)]
+
+
 TEMPLATES: dict[str, Callable[..., Device]] = {
     "strip": two_terminal_strip,
     "hbar": h_bar,

@@ -48,6 +48,7 @@ __all__ = [
     "Measurement",
     "parse_measurement",
     "to_ohm",
+    "helical_ring_transmissions",
 ]
 
 #: largest acceptable condition number of the reduced conductance matrix
@@ -163,6 +164,26 @@ def resistance_matrix(T: np.ndarray, reference: int) -> np.ndarray:
     ix = np.ix_(keep, keep)
     R[(..., *ix)] = np.linalg.inv(Gr)
     return R
+
+
+def helical_ring_transmissions(rings: list[list[int]], n_contacts: int) -> np.ndarray:
+    """Transmissions of ideal helical edges: one channel from each contact to each neighbour.
+
+    ``rings`` lists the contacts (0-based) in the order a walk along each boundary meets them
+    (:func:`pipeline.geometry.perimeter_order`). Along an ideal quantum spin Hall edge each
+    spin species runs one way round, so every contact passes exactly one channel to the next
+    contact and one to the previous one (Roth et al., Science 325, 294 (2009)). A ring with a
+    single contact passes nothing.
+    """
+    T = np.zeros((n_contacts, n_contacts))
+    for ring in rings:
+        m = len(ring)
+        if m < 2:
+            continue
+        for pos, c in enumerate(ring):
+            T[ring[(pos + 1) % m], c] += 1.0
+            T[ring[(pos - 1) % m], c] += 1.0
+    return T
 
 
 def to_ohm(r_h_over_e2: np.ndarray) -> np.ndarray:
