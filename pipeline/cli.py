@@ -165,9 +165,7 @@ def _cmd_status(args) -> int:
 
         target = load_config(target).run_dir / "samples.zarr"
     store = SampleStore.open(target)
-    c = store.counts()
-    print(f"{target}: {c['done']} done, {c['failed']} failed, {c['missing']} missing of "
-          f"{c['total']} samples ({len(store.pending_tasks())} tasks left)")
+    print(store.report(max_failures=args.failures))
     return 0
 
 
@@ -216,6 +214,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     q = sub.add_parser("status", help="what a run's store holds and what is left")
     q.add_argument("target", help="a config file (.toml) or a store directory")
+    q.add_argument("--failures", type=int, default=10, help="failed samples to list (default 10)")
     q.set_defaults(func=_cmd_status)
 
     q = sub.add_parser("demo", help="run the demonstration scenario")

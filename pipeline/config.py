@@ -464,6 +464,13 @@ def _check_cross(cfg: SweepConfig, source: str) -> None:
                     f"{source}: unknown parameter 'device.parameters.{key}' of template "
                     f"{dev.template!r}.{hint} Parameters: {', '.join(allowed)}"
                 )
+        if cfg.sweep.geometry and cfg.sweep.geometry.parameter not in allowed:
+            near = difflib.get_close_matches(cfg.sweep.geometry.parameter, allowed, n=1)
+            hint = f" Did you mean {near[0]!r}?" if near else ""
+            raise ConfigError(
+                f"{source}: 'sweep.geometry.parameter' = {cfg.sweep.geometry.parameter!r} is not a "
+                f"parameter of template {dev.template!r}.{hint} Parameters: {', '.join(allowed)}"
+            )
         missing = [p for p in allowed if p not in dev.parameters
                    and sig.parameters[p].default is inspect.Parameter.empty
                    and not (cfg.sweep.geometry and cfg.sweep.geometry.parameter == p)]
@@ -471,11 +478,6 @@ def _check_cross(cfg: SweepConfig, source: str) -> None:
             raise ConfigError(
                 f"{source}: template {dev.template!r} needs 'device.parameters' "
                 f"{', '.join(missing)} (nm)"
-            )
-        if cfg.sweep.geometry and cfg.sweep.geometry.parameter not in allowed:
-            raise ConfigError(
-                f"{source}: 'sweep.geometry.parameter' = {cfg.sweep.geometry.parameter!r} is not a "
-                f"parameter of template {dev.template!r} ({', '.join(allowed)})"
             )
     elif cfg.sweep.geometry is not None:
         raise ConfigError(

@@ -34,6 +34,7 @@ from .errors import HelisweepError, TransportError
 from .store import STATUS_DONE, STATUS_FAILED, SampleStore, TaskResult
 
 __all__ = [
+    "check_resources",
     "device_for",
     "system_for",
     "run_task",
@@ -242,18 +243,93 @@ def validate_run(cfg: SweepConfig) -> tuple[str, ...]:
         from .landauer import parse_measurement
 
         parse_measurement(label).indices(names)
-    dsys = system_for(cfg, 0)
-    for b in cfg.axes["b_perp"]:
-        for energy in cfg.axes["energy"]:
-            modes = open_modes(dsys, energy, _lead_params(dsys, b))
-            if np.any(modes == 0):
-                closed = [names[i] for i in np.flatnonzero(modes == 0)]
-                raise TransportError(
-                    f"at E = {energy!r} meV and B = {b!r} T lead(s) {closed} have no open mode, "
-                    f"so no current can enter there. Give the contacts a doping (contacts.doping, "
-                    f"tens of meV, metallic contacts) or choose energies inside a band of the leads"
-                )
+    _check_open_modes(cfg, names)
     return names
+
+
+def _check_open_modes(cfg: SweepConfig, names: tuple[str, ...]) -> None:
+    """Refuse energies where a lead has no open mode (no current could enter there)."""
+    from .mesh import _per_contact, strip_lead
+    from .transport import open_modes
+
+    material = cfg.material.parameters()
+    a = cfg.lattice.constant
+    widths = set()
+    for g in range(len(cfg.axes["geometry"])):
+        device = device_for(cfg, g)
+        doping = _per_contact(cfg.contacts.doping, device)
+        widths |= {(int(round(c.width / a)), d, c.name) for c, d in zip(device.contacts, doping)}
+    # Zero field: one clean strip per distinct (width, doping); the BHZ lattice model is
+    # symmetric under 90-degree rotations, so the lead direction does not change the count.
+    leads = {}
+    for w, d, name in sorted(widths):
+        if (w, d) not in leads:
+            leads[(w, d)] = strip_lead(material, a, w, doping=d)
+        for energy in cfg.axes["energy"]:
+            n = leads[(w, d)].modes(energy, params={})[0].velocities.size // 2
+            if n == 0:
+                raise TransportError(
+                    f"at E = {energy!r} meV the lead of contact {name!r} ({w * a:g} nm wide, "
+                    f"doping {d:g} meV) has no open mode, so no current can enter there. Give the "
+                    f"contacts a doping (contacts.doping, tens of meV: metallic contacts) or choose "
+                    f"energies inside a band of the leads"
+                )
+    if cfg.needs_field:  # in a field, check the actual leads of the first geometry
+        dsys = system_for(cfg, 0)
+        for b in cfg.axes["b_perp"]:
+            for energy in cfg.axes["energy"]:
+                modes = open_modes(dsys, energy, _lead_params(dsys, b))
+                if np.any(modes == 0):
+                    closed = [names[i] for i in np.flatnonzero(modes == 0)]
+                    raise TransportError(
+                        f"at E = {energy!r} meV and B = {b!r} T lead(s) {closed} have no open "
+                        f"mode; give the contacts a doping (contacts.doping) or change the energy"
+                    )
+
+
+def check_resources(cfg: SweepConfig, n_workers: int, store_path: Path) -> dict[str, float]:
+    """Estimate memory per worker (largest geometry) and the store's disk size; refuse what
+    will not fit, with the numbers. Returns the estimates (MB)."""
+    import shutil
+
+    from .mesh import mesh_device
+    from .preflight import estimate_memory_mb
+
+    a = cfg.lattice.constant
+    largest, worst_mb = 0, 0.0
+    n_leads = 0
+    for g in range(len(cfg.axes["geometry"])):
+        device = device_for(cfg, g)
+        n_sites = mesh_device(device, a).n_sites
+        width = max(int(round(c.width / a)) for c in device.contacts)
+        mb = estimate_memory_mb(n_sites, width)
+        n_leads = len(device.contacts)
+        if mb > worst_mb:
+            largest, worst_mb = n_sites, mb
+    total_mb = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES") / 1e6
+    per_worker = total_mb / max(n_workers, 1)
+    if worst_mb > 0.9 * per_worker:
+        raise HelisweepError(
+            f"the largest geometry ({largest} sites at a = {a:g} nm) needs an estimated "
+            f"{worst_mb:,.0f} MB per solve, but each of the {n_workers} worker(s) has about "
+            f"{per_worker:,.0f} MB ({total_mb:,.0f} MB in all). Use fewer workers, a coarser "
+            f"lattice (check `helisweep preflight`), or a smaller device"
+        )
+    n_samples = cfg.run.realisations * int(np.prod([len(v) for v in cfg.axes.values()]))
+    per_sample = 8 * n_leads * n_leads + 2 * n_leads + 8 * len(cfg.measure.report) + 1
+    disk_mb = n_samples * per_sample / 1e6 + 1.0  # uncompressed upper bound + metadata
+    probe = Path(store_path).resolve()
+    while not probe.exists():
+        probe = probe.parent
+    free_mb = shutil.disk_usage(probe).free / 1e6
+    if disk_mb > 0.9 * free_mb:
+        raise HelisweepError(
+            f"the store for {n_samples:,} samples needs up to {disk_mb:,.0f} MB but only "
+            f"{free_mb:,.0f} MB are free at {str(probe)!r}. Free space, choose another run "
+            f"directory, or reduce realisations or sweep points"
+        )
+    return {"memory_per_solve_mb": worst_mb, "memory_per_worker_mb": per_worker,
+            "store_mb": disk_mb, "free_disk_mb": free_mb}
 
 
 # --------------------------------------------------------------------------- driver
@@ -332,6 +408,7 @@ def run_sweep(
         client = local_client(cfg.execution.workers)
     try:
         n_workers = len(client.scheduler_info().get("workers", {})) or 1
+        estimates = check_resources(cfg, n_workers, path)
         facts = describe()
         store = SampleStore.open_for_run(
             path, cfg, names, fresh=fresh,
@@ -342,6 +419,9 @@ def run_sweep(
                                 if k in ("b_perp", "gate_voltage", "energy")]))
         counts = store.counts()
         if progress:
+            print(f"estimated memory per solve {estimates['memory_per_solve_mb']:,.0f} MB "
+                  f"(per worker available {estimates['memory_per_worker_mb']:,.0f} MB), store up "
+                  f"to {estimates['store_mb']:,.1f} MB", file=sys.stderr)
             print(f"store {path}: {counts['done']} samples done, {len(pending)} tasks "
                   f"({len(pending) * per_task} samples) to go on {n_workers} worker(s)",
                   file=sys.stderr)

@@ -22,7 +22,6 @@ Stores never hold executable content: plain numeric and string arrays and JSON a
 from __future__ import annotations
 
 import datetime as _dt
-import json
 import shutil
 from dataclasses import dataclass
 from pathlib import Path
@@ -227,6 +226,35 @@ class SampleStore:
         st = self.status()
         return {"done": int((st == STATUS_DONE).sum()), "failed": int((st == STATUS_FAILED).sum()),
                 "missing": int((st == STATUS_MISSING).sum()), "total": int(st.size)}
+
+    def report(self, max_failures: int = 10) -> str:
+        """Human-readable status: done/total overall and per axis value, failures with reasons."""
+        st = self.status()
+        c = self.counts()
+        lines = [f"{self.path}: {c['done']} done, {c['failed']} failed, {c['missing']} missing "
+                 f"of {c['total']} samples ({len(self.pending_tasks())} tasks left)"]
+        for axis, name in enumerate(SWEEP_DIMS):
+            if st.shape[axis] <= 1:
+                continue
+            values = self.group[name][...]
+            other = tuple(i for i in range(st.ndim) if i != axis)
+            done = (st == STATUS_DONE).sum(axis=other)
+            total = np.prod([st.shape[i] for i in other])
+            unit = self.group[name].attrs.get("units", "")
+            cells = [f"{v:g}{(' ' + unit) if unit not in ('', '1') else ''}: {d}/{total}"
+                     for v, d in zip(values, done)]
+            if len(cells) > 12:
+                cells = cells[:6] + ["..."] + cells[-5:]
+            lines.append(f"  {name}: " + ", ".join(cells))
+        failures = list(self.group.attrs.get("failures", []))
+        if failures:
+            lines.append(f"  failed samples ({len(failures)}), index = "
+                         f"({', '.join(SWEEP_DIMS)}):")
+            for f in failures[:max_failures]:
+                lines.append(f"    {tuple(f['index'])}: {f['reason']}")
+            if len(failures) > max_failures:
+                lines.append(f"    ... and {len(failures) - max_failures} more")
+        return "\n".join(lines)
 
     # ------------------------------------------------------------------ writing
     def write_task(self, key: tuple[int, int, int], result: "TaskResult") -> None:
