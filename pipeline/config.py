@@ -291,6 +291,8 @@ class ExecutionSection(_Strict):
     batch: int = Field(default=0, ge=0)
     #: reuse lead modes across realisations (Kwant precalculate)
     precalculate_leads: bool = True
+    #: solve the two spin blocks separately when S_z is conserved ("auto") or never ("off")
+    spin_blocks: Literal["auto", "off"] = "auto"
 
 
 class ClusterSection(_Strict):

@@ -42,6 +42,7 @@ __all__ = [
     "validate_run",
     "local_client",
     "quantised_values",
+    "uses_spin_blocks",
 ]
 
 _SYSTEM_CACHE: "OrderedDict[tuple, object]" = OrderedDict()
@@ -92,11 +93,30 @@ def _system_key(cfg: SweepConfig, geometry_index: int) -> tuple:
     return (config_hash(cfg), geometry_index)
 
 
-def system_for(cfg: SweepConfig, geometry_index: int):
-    """The finalized system of a geometry, built once per process and then reused."""
+def uses_spin_blocks(cfg: SweepConfig) -> bool:
+    """True when the run's Hamiltonian conserves S_z and the reduction is not switched off.
+
+    S_z is conserved without bulk-inversion asymmetry and without in-plane exchange (the
+    field is perpendicular); then the spin-up and spin-down blocks are independent
+    half-size problems (see :meth:`pipeline.mesh.DeviceSystem.block_params`).
+    """
+    from .disorder import conserves_sz
+
+    return (cfg.execution.spin_blocks == "auto"
+            and cfg.material.parameters().delta_bia == 0
+            and conserves_sz(_disorder_terms(cfg)))
+
+
+def system_for(cfg: SweepConfig, geometry_index: int, *, reduced: bool = False):
+    """The finalized system of a geometry, built once per process and then reused.
+
+    ``reduced=True`` gives the spin-block (spin-up only) system when
+    :func:`uses_spin_blocks` allows it, else the full four-band system.
+    """
     from .mesh import build_system
 
-    key = _system_key(cfg, geometry_index)
+    reduced = reduced and uses_spin_blocks(cfg)
+    key = _system_key(cfg, geometry_index) + (reduced,)
     if key in _SYSTEM_CACHE:
         _SYSTEM_CACHE.move_to_end(key)
         return _SYSTEM_CACHE[key]
@@ -107,6 +127,7 @@ def system_for(cfg: SweepConfig, geometry_index: int):
         cfg.lattice.constant,
         contact_doping=cfg.contacts.doping,
         with_field=cfg.needs_field,
+        spin_block=reduced,
     )
     _SYSTEM_CACHE[key] = dsys
     while len(_SYSTEM_CACHE) > _MAX_SYSTEMS:
@@ -126,7 +147,7 @@ def _lead_params(dsys, b_perp: float) -> dict:
 def _precalculated(cfg: SweepConfig, geometry_index: int, dsys, energy: float, b_perp: float):
     if not cfg.execution.precalculate_leads:
         return dsys.fsyst
-    key = _system_key(cfg, geometry_index) + (float(energy), float(b_perp))
+    key = _system_key(cfg, geometry_index) + (dsys.spin_block, float(energy), float(b_perp))
     if key in _PRECALC_CACHE:
         _PRECALC_CACHE.move_to_end(key)
         return _PRECALC_CACHE[key]
@@ -164,12 +185,12 @@ def run_task(cfg: SweepConfig, key: tuple[int, int, int]) -> TaskResult:
     """Solve one realisation at one geometry and strength for all (field, gate, energy) points."""
     from .disorder import realise
     from .landauer import parse_measurement
-    from .transport import transmission_matrix
+    from .transport import block_transmission_matrix, transmission_matrix
 
     t0 = time.perf_counter()
     r, g, s = key
     axes = cfg.axes
-    dsys = system_for(cfg, g)
+    dsys = system_for(cfg, g, reduced=True)
     names = dsys.contact_names
     n = len(names)
     measurements = [parse_measurement(m) for m in cfg.measure.report]
@@ -188,14 +209,22 @@ def run_task(cfg: SweepConfig, key: tuple[int, int, int]) -> TaskResult:
     )
     for ib, b in enumerate(axes["b_perp"]):
         for iv, vg in enumerate(axes["gate_voltage"]):
-            params = dsys.params(
-                b_perp=b, potential=potential, onsite_extra=extra,
-                gate_potentials=_gate_potentials(cfg, dsys.device, vg),
-            )
+            terms = dict(b_perp=b, potential=potential, onsite_extra=extra,
+                         gate_potentials=_gate_potentials(cfg, dsys.device, vg))
+            if dsys.spin_block:
+                blocks = dsys.block_params(**terms)
+            else:
+                params = dsys.params(**terms)
             for ie, energy in enumerate(axes["energy"]):
                 try:
-                    fs = _precalculated(cfg, g, dsys, energy, b)
-                    res = transmission_matrix(dsys, energy, params, fsyst=fs)
+                    if dsys.spin_block:
+                        res = block_transmission_matrix(
+                            dsys, energy, blocks,
+                            fsyst_for=lambda field, e=energy: _precalculated(cfg, g, dsys, e, field),
+                        )
+                    else:
+                        fs = _precalculated(cfg, g, dsys, energy, b)
+                        res = transmission_matrix(dsys, energy, params, fsyst=fs)
                 except Exception as exc:  # recorded per sample; the sweep goes on
                     out.status[ib, iv, ie] = STATUS_FAILED
                     out.failures.append(((ib, iv, ie), f"{type(exc).__name__}: {exc}"[:500]))

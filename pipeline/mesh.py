@@ -157,6 +157,9 @@ class DeviceSystem:
     with_field: bool
     #: boolean mask of the device sites under each gate, by gate name
     gate_masks: dict[str, np.ndarray]
+    #: True: the Kwant system holds only the spin-up block (2 orbitals per site), see
+    #: :meth:`block_params`
+    spin_block: bool = False
     _gauge: object = field(default=None, repr=False)
     _phase_cache: dict = field(default_factory=dict, repr=False)
 
@@ -218,6 +221,45 @@ class DeviceSystem:
             params.update(self.peierls_phases(b_perp))
         return params
 
+    def block_params(self, *, b_perp: float = 0.0, **onsite_terms) -> list[tuple[dict, bool]]:
+        """Params for the spin-block system: ``[(params, transpose), ...]``.
+
+        With S_z conserved the Hamiltonian is ``H_up (+) H_down`` and ``H_down(B) =
+        conj(H_up(-B))`` orbitally, so the spin-down block is solved on the same spin-up
+        system with ``conj`` of its onsite matrices and the field reversed; its transmission
+        matrix is the transpose of that solve (time reversal exchanges in and out). When the
+        two blocks are time-reverses of each other already (no field, no S_z exchange) one
+        solve serves both: the list then holds one entry used twice.
+        Returns entries ``(params, transpose)``; the total is the sum of the transmissions
+        (transposed where asked). Raises :class:`ModelError` if the onsite terms mix spins.
+        """
+        if not self.spin_block:
+            raise ModelError("block_params needs a system built with spin_block=True")
+        stack = self.onsite_stack(b_perp=b_perp, **onsite_terms)
+        if np.any(stack[:, :2, 2:]) or np.any(stack[:, 2:, :2]):
+            raise ModelError(
+                "the onsite terms mix spin up and spin down (in-plane exchange or BIA), so the "
+                "spin-block reduction does not apply; build the full system (spin_block=False)"
+            )
+        up = np.ascontiguousarray(stack[:, :2, :2])
+        down_tr = np.ascontiguousarray(stack[:, 2:, 2:].conj())
+        p_up = self._block_field_params(up, b_perp)
+        if b_perp == 0.0 and np.array_equal(up, down_tr):
+            return [(p_up, False), (p_up, True)]
+        return [(p_up, False), (self._block_field_params(down_tr, -b_perp), True)]
+
+    def _block_field_params(self, stack: np.ndarray, b_perp: float) -> dict:
+        if b_perp != 0.0 and not self.with_field:
+            raise ModelError(
+                f"a perpendicular field b_perp = {b_perp!r} T was requested, but this system "
+                f"was built without field support; build it with with_field=True"
+            )
+        params = {"onsite_stack": stack}
+        if self.with_field:
+            params["b_perp"] = float(b_perp)
+            params.update(self.peierls_phases(b_perp))
+        return params
+
     def peierls_phases(self, b_perp: float) -> dict:
         """Peierls phase functions for a uniform perpendicular field (T), cached per field."""
         key = float(b_perp)
@@ -239,6 +281,7 @@ def build_system(
     *,
     contact_doping: float | dict[str, float] = 0.0,
     with_field: bool = False,
+    spin_block: bool = False,
 ) -> DeviceSystem:
     """Mesh a device and build its finalized Kwant system (one call per geometry).
 
@@ -256,12 +299,23 @@ def build_system(
         0 for leads of the device material, tens of meV for metallic contacts.
     with_field:
         Build hoppings with Peierls phases (needed for any non-zero perpendicular field).
+    spin_block:
+        Build only the spin-up block (2 orbitals per site). Valid when S_z is conserved
+        (no BIA, no in-plane exchange): see :meth:`DeviceSystem.block_params`.
     """
     a = float(lattice_constant)
     mesh = mesh_device(device, a)
     doping = _per_contact(contact_doping, device)
     onsite0, tx, ty = lattice_matrices(material, a)
-    lat = kwant.lattice.Monatomic([[a, 0], [0, a]], offset=(0.5 * a, 0.5 * a), norbs=4)
+    norbs = 4
+    if spin_block:
+        if material.delta_bia != 0:
+            raise ModelError(
+                f"the spin-block reduction needs S_z conservation, but the material has BIA "
+                f"coupling delta_bia = {material.delta_bia!r} meV; use the full system"
+            )
+        onsite0, tx, ty, norbs = onsite0[:2, :2], tx[:2, :2], ty[:2, :2], 2
+    lat = kwant.lattice.Monatomic([[a, 0], [0, a]], offset=(0.5 * a, 0.5 * a), norbs=norbs)
 
     site_index = {lat(int(i), int(j)): k for k, (i, j) in enumerate(mesh.tags.tolist())}
 
@@ -277,7 +331,8 @@ def build_system(
         syst[keys] = _peierls_hopping(t) if with_field else t
 
     for k, (cell, normal) in enumerate(zip(mesh.lead_cells, mesh.lead_normals)):
-        lead = _make_lead(lat, cell, normal, onsite0, tx, ty, doping[k], material, with_field)
+        lead = _make_lead(lat, cell, normal, onsite0, tx, ty, doping[k], material, with_field,
+                          norbs)
         if with_field:
             lead = lead.substituted(peierls=f"peierls_lead{k}")
         added = syst.attach_lead(lead, origin=lat(*(int(c) for c in cell[0])))
@@ -292,7 +347,8 @@ def build_system(
         g.name: shapely.contains_xy(g.region, mesh.positions[:, 0], mesh.positions[:, 1])
         for g in device.gates
     }
-    return DeviceSystem(device, material, mesh, fsyst, tuple(doping), with_field, masks)
+    return DeviceSystem(device, material, mesh, fsyst, tuple(doping), with_field, masks,
+                        spin_block=spin_block)
 
 
 def _peierls_hopping(t: np.ndarray):
@@ -304,14 +360,14 @@ def _peierls_hopping(t: np.ndarray):
     return hopping
 
 
-def _make_lead(lat, cell, normal, onsite0, tx, ty, doping, material, with_field):
+def _make_lead(lat, cell, normal, onsite0, tx, ty, doping, material, with_field, norbs=4):
     a = lat.prim_vecs[0][0]
     sym = kwant.TranslationalSymmetry((normal[0] * a, normal[1] * a))
     lead = kwant.Builder(sym)
-    base = onsite0 - doping * _I4
+    base = onsite0 - doping * np.eye(norbs)
     if with_field:
         def lead_onsite(site, b_perp):
-            return base + zeeman_matrix(material, b_perp)
+            return base + zeeman_matrix(material, b_perp)[:norbs, :norbs]
         lead[(lat(*t) for t in cell.tolist())] = lead_onsite
     else:
         lead[(lat(*t) for t in cell.tolist())] = base

@@ -16,7 +16,13 @@ import numpy as np
 from .errors import TransportError
 from .mesh import DeviceSystem
 
-__all__ = ["Transmissions", "transmission_matrix", "open_modes", "MUMPS_ORDERING"]
+__all__ = [
+    "Transmissions",
+    "transmission_matrix",
+    "block_transmission_matrix",
+    "open_modes",
+    "MUMPS_ORDERING",
+]
 
 #: Fill-reducing ordering for MUMPS. Kwant picks SCOTCH when it is available, and SCOTCH
 #: orderings differ from run to run, so the same solve differed in the last digits (~1e-14)
@@ -89,3 +95,26 @@ def transmission_matrix(
         for j in range(n):
             T[i, j] = smat.transmission(i, j)
     return Transmissions(T, modes)
+
+
+def block_transmission_matrix(
+    dsys: DeviceSystem, energy: float, blocks: list[tuple[dict, bool]], *, fsyst_for=None
+) -> Transmissions:
+    """Total transmissions of a spin-block system: the sum over the two spin blocks.
+
+    ``blocks`` comes from :meth:`pipeline.mesh.DeviceSystem.block_params`; ``fsyst_for``
+    maps a field value (T) to a finalized system with precalculated leads (the spin-down
+    block is solved at the reversed field). A block listed twice is solved once.
+    """
+    total, modes, solved = None, None, {}
+    for params, transpose in blocks:
+        key = id(params)
+        if key not in solved:
+            b = params.get("b_perp", 0.0)
+            fs = fsyst_for(b) if fsyst_for is not None else None
+            solved[key] = transmission_matrix(dsys, energy, params, fsyst=fs)
+        res = solved[key]
+        T = res.matrix.T if transpose else res.matrix
+        total = T.copy() if total is None else total + T
+        modes = res.modes.copy() if modes is None else modes + res.modes
+    return Transmissions(total, modes)
