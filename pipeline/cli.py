@@ -7,6 +7,7 @@ solve      one clean solve: transmissions, conductance matrix, chosen R_ij,kl
 preflight  the preflight checks for a sweep configuration's device
 run        run or resume a sweep into its Zarr store
 status     what a run's store holds and what is left
+report     summary, L*, figures and supplementary-data package of a run
 demo       the demonstration scenario end to end
 """
 
@@ -169,6 +170,25 @@ def _cmd_status(args) -> int:
     return 0
 
 
+def _cmd_report(args) -> int:
+    from .config import load_config
+    from .engine import local_client
+    from .report import build_report
+
+    cfg = load_config(args.config)
+    client = local_client(args.workers) if (args.run and args.workers is not None) else None
+    try:
+        build_report(cfg, args.run_dir, client=client, run=args.run,
+                     temperatures=tuple(args.temperature or ()), tolerance=args.tolerance,
+                     progress=not args.quiet)
+    finally:
+        if client is not None:
+            cluster = client.cluster
+            client.close()
+            cluster.close()
+    return 0
+
+
 def _cmd_demo(args) -> int:
     from .demo import run_demo
 
@@ -216,6 +236,22 @@ def build_parser() -> argparse.ArgumentParser:
     q.add_argument("target", help="a config file (.toml) or a store directory")
     q.add_argument("--failures", type=int, default=10, help="failed samples to list (default 10)")
     q.set_defaults(func=_cmd_status)
+
+    q = sub.add_parser(
+        "report", help="summary (NetCDF), L*, figures and the supplementary-data package",
+        description="Resume the sweep if samples are missing (unless --no-run), then write "
+                    "summary.nc, lstar.json (length sweeps), figures/ and package-<run>/ + .zip "
+                    "into the run directory. Results are model estimates.")
+    q.add_argument("config", help="sweep configuration (TOML)")
+    q.add_argument("--run-dir", help="run directory (default: run.directory of the config)")
+    q.add_argument("--no-run", dest="run", action="store_false", help="only aggregate what is stored")
+    q.add_argument("--workers", type=int, help="local worker processes for missing samples")
+    q.add_argument("--temperature", type=float, action="append", metavar="K",
+                   help="also smear G(E) thermally at this temperature in K (repeatable)")
+    q.add_argument("--tolerance", type=float, default=0.05,
+                   help="relative deviation from the quantised value that ends L* (default 0.05)")
+    q.add_argument("--quiet", action="store_true")
+    q.set_defaults(func=_cmd_report)
 
     q = sub.add_parser("demo", help="run the demonstration scenario")
     q.add_argument("--out", default="demo-output")

@@ -44,6 +44,8 @@ class BHZParameters:
     name: str = "custom"
     #: where the numbers come from
     source: str = "user supplied"
+    #: caveats for the user (not quoted in generated methods text)
+    note: str = ""
 
     def __post_init__(self) -> None:
         for key in ("A", "B", "C", "D", "M", "delta_bia", "g_E", "g_H"):
@@ -77,26 +79,28 @@ PRESETS: dict[str, BHZParameters] = {
         A=364.5, B=-686.0, C=0.0, D=-512.0, M=-10.0,
         g_E=22.7, g_H=-1.21,
         name="HgTe/CdTe quantum well, 7.0 nm (inverted)",
-        source=(
-            "Koenig et al., J. Phys. Soc. Jpn. 77, 031007 (2008), Table I "
-            "(A, B, D, M); g-factors from the same paper, from memory. BIA is off by "
-            "default; the same paper estimates Delta ~ 1.6 meV (from memory): set "
-            "material.delta_bia to include it"
+        source="Koenig et al., J. Phys. Soc. Jpn. 77, 031007 (2008)",
+        note=(
+            "A, B, D, M as in Table I of the source; g-factors recalled from the same paper "
+            "(from memory). BIA is off by default; the same paper estimates Delta ~ 1.6 meV "
+            "(from memory): set material.delta_bia to include it"
         ),
     ),
     # Normal (trivial) HgTe/CdTe well below the critical thickness.
     "hgte-5.5nm": BHZParameters(
         A=387.0, B=-480.0, C=0.0, D=-306.0, M=9.0,
         name="HgTe/CdTe quantum well, 5.5 nm (normal, trivial insulator)",
-        source="Koenig et al., J. Phys. Soc. Jpn. 77, 031007 (2008), Table I, from memory",
+        source="Koenig et al., J. Phys. Soc. Jpn. 77, 031007 (2008)",
+        note="values recalled from Table I of the source (from memory): check before quantitative use",
     ),
     # Inverted InAs/GaSb bilayer in AlSb barriers (broken-gap type II).
     "inas-gasb": BHZParameters(
         A=3.7, B=-660.0, C=0.0, D=-58.4, M=-7.8,
         name="InAs/GaSb bilayer, 10 nm/10 nm (inverted)",
-        source=(
-            "Liu et al., Phys. Rev. Lett. 100, 236601 (2008), from memory; the small A "
-            "makes edge states extend over hundreds of nm - check before quantitative use"
+        source="Liu et al., Phys. Rev. Lett. 100, 236601 (2008)",
+        note=(
+            "values recalled from the source (from memory); the small A makes edge states "
+            "extend over hundreds of nm - check before quantitative use"
         ),
     ),
 }
