@@ -112,6 +112,16 @@ def _open_samples(source) -> tuple[xr.Dataset, str]:
             f"{str(path)!r} cannot be read as a sample store ({type(exc).__name__}: {exc}); "
             f"give the path of a samples.zarr written by helisweep"
         ) from exc
+    from .store import SampleStore
+
+    damaged = SampleStore.open(path).verify()
+    if damaged:
+        where = ", ".join(f"{n} task {k}" for n, k, _ in damaged[:5])
+        raise AggregateError(
+            f"the store {str(path)!r} has {len(damaged)} damaged chunk(s) (checksum mismatch: "
+            f"{where}{', ...' if len(damaged) > 5 else ''}); they are not averaged. Rerun "
+            f"`helisweep run` with the same config to recompute them, then aggregate again"
+        )
     return ds, str(path)
 
 

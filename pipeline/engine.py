@@ -30,7 +30,7 @@ from pathlib import Path
 import numpy as np
 
 from .config import SweepConfig, config_hash
-from .errors import HelisweepError, TransportError
+from .errors import HelisweepError, StoreError, TransportError
 from .store import STATUS_DONE, STATUS_FAILED, SampleStore, TaskResult
 
 __all__ = [
@@ -443,6 +443,11 @@ def run_sweep(
             path, cfg, names, fresh=fresh,
             provenance={"workers": n_workers, "config_hash": config_hash(cfg), **facts},
         )
+        damaged = store.repair_for_resume()
+        if damaged and progress:
+            print(f"{len(damaged)} damaged chunk(s) found (checksum); their tasks will be "
+                  f"recomputed: " + ", ".join(f"{n}{k}" for n, k, _ in damaged[:5]),
+                  file=sys.stderr)
         pending = store.pending_tasks(cfg.run.realisations)
         per_task = int(np.prod([len(v) for k, v in cfg.axes.items()
                                 if k in ("b_perp", "gate_voltage", "energy")]))
@@ -478,7 +483,14 @@ def run_sweep(
         for fut in ac:
             key = futures.pop(fut)
             result = fut.result()
-            store.write_task(key, result)
+            try:
+                store.write_task(key, result)
+            except OSError as exc:  # full disk, quota, lost mount: stop cleanly, keep the rest
+                raise StoreError(
+                    f"writing task {key} to the store {str(path)!r} failed: {exc}. The store "
+                    f"keeps every task written before (this one stays missing). Free space or "
+                    f"fix the file system, then rerun the same command to resume"
+                ) from exc
             failed += len(result.failures)
             bar.update(per_task)
             if queue:

@@ -1,0 +1,188 @@
+"""Faults: failed solves, dead workers, full disks, damaged chunks, repeated kills."""
+
+import errno
+import os
+import random
+import signal
+import subprocess
+import sys
+import threading
+import time
+
+import numpy as np
+import pytest
+import xarray as xr
+import zarr
+
+from pipeline import engine
+from pipeline.aggregate import AggregateError, summarize
+from pipeline.config import parse_config
+from pipeline.errors import StoreError
+from pipeline.store import SampleStore
+
+
+def _arrays(path):
+    ds = xr.open_zarr(str(path), consolidated=False)
+    return {k: ds[k].values for k in ("transmission", "modes", "measurements", "status")}
+
+
+def _assert_same(a, b):
+    for k in a:
+        np.testing.assert_array_equal(a[k], b[k], err_msg=k)
+
+
+@pytest.fixture(scope="module")
+def reference(tmp_path_factory, dask_clients):
+    """The uninterrupted run every faulty run must end up equal to."""
+    from conftest import TINY_CONFIG
+
+    d = tmp_path_factory.mktemp("ref")
+    text = TINY_CONFIG.format(realisations=6, directory=str(d))
+    store = engine.run_sweep(parse_config(text), client=dask_clients[2], store_path=d / "ref.zarr",
+                             progress=False)
+    return text, _arrays(store.path)
+
+
+def test_failed_solve_is_recorded_and_the_sweep_goes_on(tmp_path, reference, monkeypatch):
+    from dask.distributed import Client
+
+    text, _ = reference
+    cfg = parse_config(text)
+    import pipeline.transport as transport
+
+    original = transport.transmission_matrix
+
+    def flaky(dsys, energy, params, **kw):
+        if energy == 1.0:
+            raise RuntimeError("injected solver failure")
+        return original(dsys, energy, params, **kw)
+
+    monkeypatch.setattr(transport, "transmission_matrix", flaky)
+    with Client(processes=False, n_workers=1, threads_per_worker=1, dashboard_address=":0") as client:
+        store = engine.run_sweep(cfg, client=client, store_path=tmp_path / "s.zarr", progress=False)
+    st = store.status()
+    assert np.all(st[..., 1] == 2) and np.all(st[..., [0, 2]] == 1)
+    failures = store.group.attrs["failures"]
+    assert len(failures) == st[..., 1].size
+    assert all("injected solver failure" in f["reason"] for f in failures)
+    assert "failed samples" in store.report()
+
+
+def test_full_disk_stops_cleanly_and_resume_completes(tmp_path, reference, dask_clients, monkeypatch):
+    text, ref = reference
+    cfg = parse_config(text)
+    path = tmp_path / "s.zarr"
+    calls = {"n": 0}
+    original = SampleStore.write_task
+
+    def failing(self, key, result):
+        calls["n"] += 1
+        if calls["n"] == 4:
+            raise OSError(errno.ENOSPC, "No space left on device")
+        return original(self, key, result)
+
+    monkeypatch.setattr(SampleStore, "write_task", failing)
+    with pytest.raises(StoreError, match="No space left on device") as err:
+        engine.run_sweep(cfg, client=dask_clients[2], store_path=path, progress=False)
+    assert str(path) in str(err.value)
+    monkeypatch.setattr(SampleStore, "write_task", original)
+    st = SampleStore.open(path).status()  # still readable
+    assert (st == 1).sum() == 3 * 3  # the three tasks written before the failure
+    engine.run_sweep(cfg, client=dask_clients[2], store_path=path, progress=False)
+    _assert_same(_arrays(path), ref)
+
+
+def test_damaged_chunk_is_detected_never_averaged_and_recomputed(tmp_path, reference, dask_clients):
+    text, ref = reference
+    cfg = parse_config(text)
+    path = tmp_path / "s.zarr"
+    engine.run_sweep(cfg, client=dask_clients[2], store_path=path, progress=False)
+    chunk = path / "transmission" / "c" / "2" / "1" / "0" / "0" / "0" / "0" / "0" / "0"
+    assert chunk.is_file()
+    data = bytearray(chunk.read_bytes())
+    data[len(data) // 2] ^= 0xFF  # one flipped byte
+    chunk.write_bytes(bytes(data))
+    assert SampleStore.open(path).verify()[0][:2] == ("transmission", (2, 1, 0))
+    with pytest.raises(AggregateError, match=r"damaged chunk.*transmission task \(2, 1, 0\)"):
+        summarize(path)
+    store = engine.run_sweep(cfg, client=dask_clients[2], store_path=path, progress=False)
+    assert store.group.attrs["repairs"][0]["task"] == [2, 1, 0]
+    assert store.group.attrs["sessions"][-1]["tasks"] == 1  # only the damaged task redone
+    _assert_same(_arrays(path), ref)
+
+
+@pytest.mark.slow
+def test_worker_killed_mid_run_store_ends_complete_and_identical(tmp_path, reference):
+    text, ref = reference
+    cfg = parse_config(text)
+    client = engine.local_client(2)
+    try:
+        pids = list(client.run(os.getpid).values())
+        path = tmp_path / "s.zarr"
+        outcome = {}
+
+        def run():
+            try:
+                outcome["store"] = engine.run_sweep(cfg, client=client, store_path=path,
+                                                    progress=False, max_in_flight=2)
+            except Exception as exc:  # reported below
+                outcome["error"] = exc
+
+        thread = threading.Thread(target=run)
+        thread.start()
+        deadline = time.monotonic() + 60
+        while time.monotonic() < deadline:
+            try:
+                if (zarr.open_group(str(path), mode="r")["status"][...] == 1).sum() >= 3:
+                    break
+            except Exception:
+                pass
+            time.sleep(0.02)
+        os.kill(pids[0], signal.SIGKILL)  # the nanny restarts it; Dask reschedules its tasks
+        thread.join(timeout=180)
+        assert "error" not in outcome, outcome.get("error")
+        _assert_same(_arrays(path), ref)
+    finally:
+        cluster = client.cluster
+        client.close()
+        cluster.close()
+
+
+@pytest.mark.slow
+def test_repeated_sigkill_at_random_points_then_resume(tmp_path, reference):
+    text, ref = reference
+    config = tmp_path / "tiny.toml"
+    config.write_text(text)
+    path = tmp_path / "s.zarr"
+    cmd = [sys.executable, "-m", "pipeline.cli", "run", str(config), "--workers", "1", "--quiet",
+           "--store", str(path)]
+    rng = random.Random(2026)
+    total = 6 * 2 * 3
+    kills = 0
+    for _ in range(3):
+        proc = subprocess.Popen(cmd, start_new_session=True, stdout=subprocess.DEVNULL,
+                                stderr=subprocess.DEVNULL)
+        try:
+            before = _done(path)
+            target = min(total - 1, before + rng.randint(1, 3) * 3)
+            deadline = time.monotonic() + 60
+            while _done(path) < target and proc.poll() is None and time.monotonic() < deadline:
+                time.sleep(0.01)
+            time.sleep(rng.uniform(0, 0.3))  # kill at a random moment, maybe mid-write
+        finally:
+            if proc.poll() is None:
+                kills += 1
+            os.killpg(proc.pid, signal.SIGKILL)
+            proc.wait()
+    assert kills >= 2, "the runs finished before they could be killed"
+    out = subprocess.run(cmd, capture_output=True, text=True, timeout=300)
+    assert out.returncode == 0, out.stderr
+    _assert_same(_arrays(path), ref)
+    assert not SampleStore.open(path).verify()
+
+
+def _done(path) -> int:
+    try:
+        return int((zarr.open_group(str(path), mode="r")["status"][...] == 1).sum())
+    except Exception:
+        return 0
