@@ -486,6 +486,16 @@ def _check_cross(cfg: SweepConfig, source: str) -> None:
             f"{source}: 'sweep.geometry' varies a template parameter, but the device is a file "
             f"({dev.file!r}); use a template or drop the geometry axis"
         )
+    a = cfg.lattice.constant
+    lengths = [(f"device.parameters.{k}", v) for k, v in dev.parameters.items()]
+    if cfg.sweep.geometry is not None:
+        lengths += [("sweep.geometry.values", v) for v in cfg.sweep.geometry.values]
+    for key, value in lengths:
+        if value < 2 * a:
+            raise ConfigError(
+                f"{source}: '{key}' = {value!r} nm is smaller than two lattice constants "
+                f"({2 * a:g} nm): lengths are in nm (did you give um or m?)"
+            )
     if dev.file is not None and not (Path(cfg.base_dir) / dev.file).is_file():
         raise ConfigError(
             f"{source}: 'device.file' = {dev.file!r} does not exist (looked in "

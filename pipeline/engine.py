@@ -242,8 +242,12 @@ def run_task(cfg: SweepConfig, key: tuple[int, int, int]) -> TaskResult:
 
 
 # --------------------------------------------------------------------------- checks before compute
-def validate_run(cfg: SweepConfig) -> tuple[str, ...]:
-    """Everything that can be checked before compute: geometry, mesh, open lead modes.
+def validate_run(
+    cfg: SweepConfig, n_workers: int | None = None, store_path: str | Path | None = None
+) -> tuple[str, ...]:
+    """Everything that can be checked before compute: geometry, memory and disk, the
+    discretisation, open lead modes. Cheap checks come first, so a lattice far too fine is
+    refused before anything large is built.
 
     Returns the contact names. Raises a :class:`HelisweepError` subclass with the fix.
     """
@@ -272,8 +276,35 @@ def validate_run(cfg: SweepConfig) -> tuple[str, ...]:
         from .landauer import parse_measurement
 
         parse_measurement(label).indices(names)
+    path = Path(store_path) if store_path else cfg.run_dir / "samples.zarr"
+    check_resources(cfg, n_workers or cfg.execution.workers or os.cpu_count() or 1, path)
+    _check_discretisation(cfg)
     _check_open_modes(cfg, names)
     return names
+
+
+#: relative error of the lattice bulk gap above which a run is refused (the preflight warns
+#: from 5 %); common practice, no source
+_MAX_GAP_ERROR = 0.2
+
+
+def _check_discretisation(cfg: SweepConfig) -> None:
+    """Refuse a lattice so coarse that the discretised bands misrepresent the model."""
+    from .errors import ModelError
+    from .model import continuum_bulk_gap
+    from .preflight import lattice_bulk_gap
+
+    material = cfg.material.parameters()
+    a = cfg.lattice.constant
+    gap_c = continuum_bulk_gap(material)[0]
+    gap_l = lattice_bulk_gap(material, a)[0]
+    if gap_c > 0 and abs(gap_l - gap_c) > _MAX_GAP_ERROR * gap_c:
+        raise ModelError(
+            f"lattice too coarse for the model: at a = {a:g} nm the lattice bulk gap is "
+            f"{gap_l:.3g} meV against {gap_c:.3g} meV in the continuum model "
+            f"({100 * abs(gap_l - gap_c) / gap_c:.0f} % off, limit {100 * _MAX_GAP_ERROR:.0f} %). "
+            f"Use a smaller lattice constant (`helisweep preview` reports the discretisation error)"
+        )
 
 
 def _check_open_modes(cfg: SweepConfig, names: tuple[str, ...]) -> None:
@@ -321,7 +352,6 @@ def check_resources(cfg: SweepConfig, n_workers: int, store_path: Path) -> dict[
     will not fit, with the numbers. Returns the estimates (MB)."""
     import shutil
 
-    from .mesh import mesh_device
     from .preflight import estimate_memory_mb
 
     a = cfg.lattice.constant
@@ -329,7 +359,9 @@ def check_resources(cfg: SweepConfig, n_workers: int, store_path: Path) -> dict[
     n_leads = 0
     for g in range(len(cfg.axes["geometry"])):
         device = device_for(cfg, g)
-        n_sites = mesh_device(device, a).n_sites
+        # from the area, not the mesh: a lattice far too fine must be refused before the
+        # mesh itself exhausts the memory
+        n_sites = int(device.outline.area / a**2)
         width = max(int(round(c.width / a)) for c in device.contacts)
         mb = estimate_memory_mb(n_sites, width)
         n_leads = len(device.contacts)
@@ -430,8 +462,9 @@ def run_sweep(
 
     from .environment import describe
 
-    names = validate_run(cfg)
     path = Path(store_path) if store_path else cfg.run_dir / "samples.zarr"
+    hint = len(client.scheduler_info().get("workers", {})) if client is not None else None
+    names = validate_run(cfg, hint, path)
     own_client = client is None
     if own_client:
         client = local_client(cfg.execution.workers)
