@@ -5,7 +5,8 @@ Commands
 preview    device outline + preflight checks + mesh figure (no sweep)
 solve      one clean solve: transmissions, conductance matrix, chosen R_ij,kl
 preflight  the preflight checks for a sweep configuration's device
-run        run or resume a sweep into its Zarr store
+run        run or resume a sweep into its Zarr store (locally or on Slurm: --cluster slurm)
+slurm-script  write (and optionally submit) a batch-mode Slurm job script
 status     what a run's store holds and what is left
 report     summary, L*, figures and supplementary-data package of a run
 demo       the demonstration scenario end to end
@@ -137,21 +138,12 @@ def _cmd_preflight(args) -> int:
 
 
 def _cmd_run(args) -> int:
+    from .cluster import cluster_overrides, run_on_cluster
     from .config import load_config
-    from .engine import local_client, run_sweep
 
     cfg = load_config(args.config)
-    client = None
-    if args.workers is not None:
-        client = local_client(args.workers)
-    try:
-        store = run_sweep(cfg, client=client, store_path=args.store, fresh=args.fresh,
-                          progress=not args.quiet)
-    finally:
-        if client is not None:
-            cluster = client.cluster
-            client.close()
-            cluster.close()
+    store = run_on_cluster(cfg, cluster_overrides(args), workers=args.workers,
+                           store_path=args.store, fresh=args.fresh, progress=not args.quiet)
     c = store.counts()
     print(f"{store.path}: {c['done']} done, {c['failed']} failed, {c['missing']} missing of {c['total']}")
     return 0
@@ -197,6 +189,8 @@ def _cmd_demo(args) -> int:
 
 
 def build_parser() -> argparse.ArgumentParser:
+    from .cluster import add_cli as add_slurm_script_command, add_cluster_options
+
     p = argparse.ArgumentParser(prog="helisweep", description=__doc__.split("\n")[0])
     sub = p.add_subparsers(dest="command", required=True)
 
@@ -230,7 +224,10 @@ def build_parser() -> argparse.ArgumentParser:
     q.add_argument("--store", help="store path (default: <run directory>/samples.zarr)")
     q.add_argument("--fresh", action="store_true", help="start anew if the store holds another config (the old store is moved aside)")
     q.add_argument("--quiet", action="store_true", help="no progress output")
+    add_cluster_options(q)
     q.set_defaults(func=_cmd_run)
+
+    add_slurm_script_command(sub)
 
     q = sub.add_parser("status", help="what a run's store holds and what is left")
     q.add_argument("target", help="a config file (.toml) or a store directory")

@@ -189,7 +189,8 @@ cmd_status() {
   for name in "${DAEMONS[@]}"; do
     if is_ours "$name"; then echo "$name: running (PID $(cat "$PIDS/$name"))"; else echo "$name: not started here"; fi
   done
-  sinfo 2>/dev/null || echo "sinfo: no answer"
+  # without a configuration file sinfo would look for one through DNS: ask only ours
+  if [ -f "$CONF" ]; then sinfo 2>/dev/null || echo "sinfo: no answer"; else echo "no $CONF"; fi
 }
 
 case "${1:-}" in
