@@ -324,7 +324,9 @@ def _check_open_modes(cfg: SweepConfig, names: tuple[str, ...]) -> None:
     leads = {}
     for w, d, name in sorted(widths):
         if (w, d) not in leads:
-            leads[(w, d)] = strip_lead(material, a, w, doping=d)
+            # without BIA the leads' spin blocks have the same bands: count on one of them
+            leads[(w, d)] = strip_lead(material, a, w, doping=d,
+                                       spin_block=material.delta_bia == 0)
         for energy in cfg.axes["energy"]:
             n = leads[(w, d)].modes(energy, params={})[0].velocities.size // 2
             if n == 0:

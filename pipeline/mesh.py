@@ -390,14 +390,28 @@ def _per_contact(value, device: Device) -> list[float]:
 
 
 def strip_lead(
-    material: BHZParameters, lattice_constant: float, width_sites: int, *, doping: float = 0.0
+    material: BHZParameters,
+    lattice_constant: float,
+    width_sites: int,
+    *,
+    doping: float = 0.0,
+    spin_block: bool = False,
 ) -> kwant.system.InfiniteSystem:
-    """A clean, infinite strip ``width_sites`` wide running along x (for lead-band analysis)."""
+    """A clean, infinite strip ``width_sites`` wide running along x (for lead-band analysis).
+
+    ``spin_block=True`` keeps only the spin-up block (valid without BIA; the spin-down block
+    has the same bands), a quarter of the cost of the mode computation.
+    """
     if width_sites < 1:
         raise GeometryError(f"strip width must be at least one site, got {width_sites!r}")
     a = float(lattice_constant)
     onsite0, tx, ty = lattice_matrices(material, a)
-    lat = kwant.lattice.Monatomic([[a, 0], [0, a]], offset=(0.5 * a, 0.5 * a), norbs=4)
+    norbs = 4
+    if spin_block:
+        if material.delta_bia != 0:
+            raise ModelError("a spin-block strip needs delta_bia = 0 (BIA mixes the spins)")
+        onsite0, tx, ty, norbs = onsite0[:2, :2], tx[:2, :2], ty[:2, :2], 2
+    lat = kwant.lattice.Monatomic([[a, 0], [0, a]], offset=(0.5 * a, 0.5 * a), norbs=norbs)
     cell = np.stack([np.zeros(width_sites, dtype=int), np.arange(width_sites)], axis=1)
-    lead = _make_lead(lat, cell, (1, 0), onsite0, tx, ty, doping, material, False)
+    lead = _make_lead(lat, cell, (1, 0), onsite0, tx, ty, doping, material, False, norbs)
     return lead.finalized()

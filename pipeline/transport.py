@@ -24,20 +24,34 @@ __all__ = [
     "MUMPS_ORDERING",
 ]
 
-#: Fill-reducing ordering for MUMPS. Kwant picks SCOTCH when it is available, and SCOTCH
-#: orderings differ from run to run, so the same solve differed in the last digits (~1e-14)
-#: between runs and workers. METIS is deterministic at comparable speed (measured here).
-MUMPS_ORDERING = "metis"
+#: Fill-reducing orderings for MUMPS, in order of preference. Kwant picks SCOTCH when it is
+#: available, and SCOTCH orderings differ from run to run, so the same solve differed in the
+#: 13th digit between runs and workers. MUMPS silently replaces an ordering it was not built
+#: with (Debian's build has no METIS) by its own choice, often SCOTCH. AMF is deterministic
+#: and was also about 2x faster than SCOTCH on 200x80-site BHZ strips and H-bars here
+#: (benchmarks/bench_pipeline.py); AMD, QAMD and PORD are deterministic fall-backs.
+DETERMINISTIC_ORDERINGS = ("amf", "amd", "qamd", "pord")
+MUMPS_ORDERING = DETERMINISTIC_ORDERINGS[0]
 
 
 def _make_solver():
     """Our own solver instance (MUMPS with a deterministic ordering, else SciPy's)."""
+    global MUMPS_ORDERING
     try:
+        import kwant.linalg.mumps as linalg_mumps
         import kwant.solvers.mumps as mumps
     except ImportError:  # Kwant without MUMPS: SciPy's solver is deterministic already
         import kwant.solvers.sparse as sparse
 
         return sparse.Solver(), "scipy"
+    available = linalg_mumps.possible_orderings()
+    usable = [o for o in DETERMINISTIC_ORDERINGS if o in available]
+    if not usable:
+        raise RuntimeError(
+            f"this MUMPS build offers no deterministic ordering (has {available!r}); results "
+            f"would differ between runs. Rebuild Kwant against a MUMPS with AMD/AMF"
+        )
+    MUMPS_ORDERING = usable[0]
     solver = mumps.Solver()
     solver.options(ordering=MUMPS_ORDERING)
     return solver, "mumps"
