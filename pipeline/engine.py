@@ -243,7 +243,10 @@ def run_task(cfg: SweepConfig, key: tuple[int, int, int]) -> TaskResult:
 
 # --------------------------------------------------------------------------- checks before compute
 def validate_run(
-    cfg: SweepConfig, n_workers: int | None = None, store_path: str | Path | None = None
+    cfg: SweepConfig,
+    n_workers: int | None = None,
+    store_path: str | Path | None = None,
+    worker_memory_mb: float | None = None,
 ) -> tuple[str, ...]:
     """Everything that can be checked before compute: geometry, memory and disk, the
     discretisation, open lead modes. Cheap checks come first, so a lattice far too fine is
@@ -277,7 +280,8 @@ def validate_run(
 
         parse_measurement(label).indices(names)
     path = Path(store_path) if store_path else cfg.run_dir / "samples.zarr"
-    check_resources(cfg, n_workers or cfg.execution.workers or os.cpu_count() or 1, path)
+    check_resources(cfg, n_workers or cfg.execution.workers or os.cpu_count() or 1, path,
+                    worker_memory_mb)
     _check_discretisation(cfg)
     _check_open_modes(cfg, names)
     return names
@@ -349,9 +353,15 @@ def _check_open_modes(cfg: SweepConfig, names: tuple[str, ...]) -> None:
                     )
 
 
-def check_resources(cfg: SweepConfig, n_workers: int, store_path: Path) -> dict[str, float]:
+def check_resources(
+    cfg: SweepConfig, n_workers: int, store_path: Path, worker_memory_mb: float | None = None
+) -> dict[str, float]:
     """Estimate memory per worker (largest geometry) and the store's disk size; refuse what
-    will not fit, with the numbers. Returns the estimates (MB)."""
+    will not fit, with the numbers. Returns the estimates (MB).
+
+    ``worker_memory_mb`` is the smallest memory limit the workers report (remote workers on
+    a cluster); without it this machine's memory is shared among ``n_workers``.
+    """
     import shutil
 
     from .preflight import estimate_memory_mb
@@ -370,13 +380,15 @@ def check_resources(cfg: SweepConfig, n_workers: int, store_path: Path) -> dict[
         if mb > worst_mb:
             largest, worst_mb = n_sites, mb
     total_mb = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES") / 1e6
-    per_worker = total_mb / max(n_workers, 1)
+    per_worker = worker_memory_mb or total_mb / max(n_workers, 1)
     if worst_mb > 0.9 * per_worker:
+        where = ("as their memory limit" if worker_memory_mb
+                 else f"of the {total_mb:,.0f} MB of this machine")
         raise HelisweepError(
             f"the largest geometry ({largest} sites at a = {a:g} nm) needs an estimated "
             f"{worst_mb:,.0f} MB per solve, but each of the {n_workers} worker(s) has about "
-            f"{per_worker:,.0f} MB ({total_mb:,.0f} MB in all). Use fewer workers, a coarser "
-            f"lattice (check `helisweep preflight`), or a smaller device"
+            f"{per_worker:,.0f} MB {where}. Use fewer workers per node (more memory each), a "
+            f"coarser lattice (check `helisweep preflight`), or a smaller device"
         )
     n_samples = cfg.run.realisations * int(np.prod([len(v) for v in cfg.axes.values()]))
     per_sample = 8 * n_leads * n_leads + 2 * n_leads + 8 * len(cfg.measure.report) + 1
@@ -465,14 +477,20 @@ def run_sweep(
     from .environment import describe
 
     path = Path(store_path) if store_path else cfg.run_dir / "samples.zarr"
-    hint = len(client.scheduler_info().get("workers", {})) if client is not None else None
-    names = validate_run(cfg, hint, path)
+    hint, worker_mb = None, None
+    if client is not None:
+        workers = client.scheduler_info().get("workers", {})
+        hint = len(workers) or None
+        limits = [w.get("memory_limit") or 0 for w in workers.values()]
+        if limits and min(limits) > 0:
+            worker_mb = min(limits) / 1e6
+    names = validate_run(cfg, hint, path, worker_mb)
     own_client = client is None
     if own_client:
         client = local_client(cfg.execution.workers)
     try:
         n_workers = len(client.scheduler_info().get("workers", {})) or 1
-        estimates = check_resources(cfg, n_workers, path)
+        estimates = check_resources(cfg, n_workers, path, worker_mb)
         facts = describe()
         store = SampleStore.open_for_run(
             path, cfg, names, fresh=fresh,
