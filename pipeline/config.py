@@ -326,6 +326,26 @@ class ClusterSection(_Strict):
     site_defaults: str | None = None
 
 
+class ConcatenationSection(_Strict):
+    """Edges beyond direct reach, composed from independent disordered segments
+    (see :mod:`pipeline.concat`); a two-terminal strip only."""
+
+    #: length of one segment (nm), a multiple of the lattice constant
+    segment_length: float = Field(gt=0, le=1e5)
+    #: segments in the pool per (energy, field, disorder strength) point
+    segments: int = Field(default=200, ge=2, le=100_000)
+    #: clean buffer at each segment end (nm), or "auto" (from the evanescent decay length)
+    buffer: float | Literal["auto"] = "auto"
+    #: edge lengths (nm), multiples of segment_length
+    lengths: list[float] = Field(min_length=1)
+    #: random segment sequences (edges) per length
+    sequences: int = Field(default=1000, ge=2, le=10_000_000)
+    #: "coherent" (star product of amplitudes), "incoherent" (of probabilities), or both
+    modes: list[Literal["coherent", "incoherent"]] = ["coherent", "incoherent"]
+    #: bootstrap resamples of the pool for the error of the mean (0: plain standard error)
+    pool_resamples: int = Field(default=200, ge=0, le=100_000)
+
+
 class SweepConfig(_Strict):
     run: RunSection
     device: DeviceSection
@@ -338,6 +358,7 @@ class SweepConfig(_Strict):
     measure: MeasureSection
     execution: ExecutionSection = ExecutionSection()
     cluster: ClusterSection = ClusterSection()
+    concatenation: ConcatenationSection | None = None
     #: directory of the config file (resolves relative geometry paths); not part of the file
     base_dir: str = Field(default=".", exclude=True)
     #: the exact text the config was read from
@@ -506,6 +527,30 @@ def _check_cross(cfg: SweepConfig, source: str) -> None:
             f"{source}: 'sweep.gate_voltage' is swept but 'gates.lever_arm' is 0 meV/V, so the "
             f"gate would do nothing; set the lever arm (meV per volt)"
         )
+    cc = cfg.concatenation
+    if cc is not None:
+        if dev.template != "strip":
+            raise ConfigError(
+                f"{source}: [concatenation] composes segments of a two-terminal strip, but "
+                f"'device' is {dev.template or dev.file!r}; use template = \"strip\""
+            )
+        ratio = cc.segment_length / a
+        if abs(ratio - round(ratio)) > 1e-9:
+            raise ConfigError(
+                f"{source}: 'concatenation.segment_length' = {cc.segment_length!r} nm is not a "
+                f"multiple of the lattice constant {a:g} nm"
+            )
+        for L in cc.lengths:
+            n = L / cc.segment_length
+            if n < 1 - 1e-9 or abs(n - round(n)) > 1e-9:
+                raise ConfigError(
+                    f"{source}: 'concatenation.lengths' contains {L!r} nm, which is not a "
+                    f"multiple of segment_length = {cc.segment_length!r} nm"
+                )
+        if len(set(cc.modes)) != len(cc.modes) or not cc.modes:
+            raise ConfigError(f"{source}: 'concatenation.modes' = {cc.modes!r}: give each mode once")
+        if any(g != 0 for g in cfg.sweep.gate_voltage):
+            raise ConfigError(f"{source}: [concatenation] does not support a gate sweep (the strip has no gates)")
     cfg.material.parameters()  # validates the BHZ set (raises ModelError with the fix)
 
 
@@ -519,7 +564,7 @@ def config_hash(cfg: SweepConfig) -> str:
     still resume.
     """
     data = cfg.model_dump(mode="json",
-                          exclude={"execution": True, "cluster": True,
+                          exclude={"execution": True, "cluster": True, "concatenation": True,
                                    "run": {"name", "directory", "realisations"}})
     text = repr(sorted(_flatten(data)))
     return hashlib.sha256(text.encode()).hexdigest()

@@ -586,6 +586,7 @@ def make_package(
     summary: Any = None,
     store_path: str | Path | None = None,
     config: Any = None,
+    extra_files: Iterable[str | Path] = (),
 ) -> tuple[Path, Path]:
     """Write the supplementary-data package of a run (a folder and a zip of it).
 
@@ -607,6 +608,9 @@ def make_package(
         The sample store, default ``<run_dir>/samples.zarr``.
     config : SweepConfig, optional
         The configuration; default parsed from the text stored in the store.
+    extra_files : iterable of paths, optional
+        Further data files of the run (e.g. the concatenated-edge results), copied into
+        ``data/`` of the package.
 
     Returns
     -------
@@ -653,6 +657,13 @@ def make_package(
             figures = list(figures)
             if figures:
                 _copy_figures(figures, work / "figures")
+        extra_files = [Path(f) for f in extra_files]
+        if extra_files:
+            (work / "data").mkdir()
+            for f in extra_files:
+                if not f.is_file():
+                    raise ExportError(f"extra file {str(f)!r} does not exist")
+                shutil.copyfile(f, work / "data" / f.name)
         if lstar_results:
             entries = []
             for r in lstar_results:

@@ -54,7 +54,27 @@ def build_report(
     tolerance: float = 0.05,
     progress: bool = True,
 ) -> Path:
-    """Run or resume the sweep, then write summary, L*, figures and package; returns the zip."""
+    """Run or resume the sweep, then write summary, L*, figures and package; returns the zip.
+
+    Without a ``client`` a local cluster is started for the call (and closed after it).
+    """
+    run_dir = Path(run_dir) if run_dir is not None else cfg.run_dir
+    store_path = run_dir / "samples.zarr"
+    own_client = client is None and (run or cfg.concatenation is not None)
+    if own_client:
+        from .engine import local_client
+
+        client = local_client(cfg.execution.workers)
+    try:
+        return _build(cfg, run_dir, store_path, client, run, temperatures, tolerance, progress)
+    finally:
+        if own_client:
+            cluster = client.cluster
+            client.close()
+            cluster.close()
+
+
+def _build(cfg, run_dir, store_path, client, run, temperatures, tolerance, progress) -> Path:
     import xarray as xr
 
     from .aggregate import save_summary, summarize
@@ -62,8 +82,6 @@ def build_report(
     from .export import make_package
     from .figures import load_run, make_figures
 
-    run_dir = Path(run_dir) if run_dir is not None else cfg.run_dir
-    store_path = run_dir / "samples.zarr"
     if run:
         run_sweep(cfg, client=client, store_path=store_path, progress=progress)
     _say(f"summarising {store_path}", progress)
@@ -79,8 +97,17 @@ def build_report(
     _say("drawing figures", progress)
     rundata = load_run(store_path, summary, config=cfg)
     figures = make_figures(rundata, run_dir / "figures", lstar=list(lstar.values()) or None)
+    extra = []
+    if cfg.concatenation is not None:
+        from .longedges import run_concatenation
+
+        _say("concatenated edges beyond direct reach", progress)
+        long = run_concatenation(cfg, run_dir, client=client, progress=progress)
+        figures = list(figures) + list(long["figures"])
+        extra = [long["netcdf"], long["lstar"]]
     _say("writing the supplementary-data package", progress)
     folder, zip_path = make_package(run_dir, lstar_results=list(lstar.values()), figures=figures,
-                                    summary=summary, store_path=store_path, config=cfg)
+                                    summary=summary, store_path=store_path, config=cfg,
+                                    extra_files=extra)
     _say(f"package: {folder} and {zip_path}", progress)
     return zip_path

@@ -190,6 +190,7 @@ class SampleStore:
         return cls(path, group)
 
     def _grow(self, realisations: int) -> None:
+        self.__dict__.pop("_arrays", None)
         have = self.group["realisation"].shape[0]
         if realisations <= have:
             return
@@ -297,17 +298,24 @@ class SampleStore:
         return "\n".join(lines)
 
     # ------------------------------------------------------------------ writing
+    def _array(self, name: str):
+        """Array handle, opened once (looking it up in the group rereads its metadata)."""
+        cache = self.__dict__.setdefault("_arrays", {})
+        if name not in cache:
+            cache[name] = self.group[name]
+        return cache[name]
+
     def write_task(self, key: tuple[int, int, int], result: "TaskResult") -> None:
         """Write one task's samples; its status goes last, so a kill leaves it missing."""
         r, g, s = key
-        self.group["transmission"][r, g, s] = result.transmission
-        self.group["modes"][r, g, s] = result.modes
-        self.group["measurements"][r, g, s] = result.measurements
+        self._array("transmission")[r, g, s] = result.transmission
+        self._array("modes")[r, g, s] = result.modes
+        self._array("measurements")[r, g, s] = result.measurements
         if result.failures:
             failures = list(self.group.attrs.get("failures", []))
             failures += [{"index": [r, g, s, *idx], "reason": why} for idx, why in result.failures]
             self.group.attrs["failures"] = failures
-        self.group["status"][r, g, s] = result.status
+        self._array("status")[r, g, s] = result.status
 
     def finish_session(self, summary: dict) -> None:
         sessions = list(self.group.attrs.get("sessions", []))
