@@ -681,8 +681,12 @@ def _wait_for_workers(client, settings: ClusterSettings, n: int = 1) -> None:
 
 
 def _n_tasks(cfg) -> int:
+    """Upper bound of the number of tasks (blocks of realisations) of a fresh run."""
+    from .store import block_size
+
     axes = cfg.axes
-    return cfg.run.realisations * len(axes["geometry"]) * len(axes["disorder_strength"])
+    blocks = -(-cfg.run.realisations // block_size(cfg, 1))
+    return blocks * len(axes["geometry"]) * len(axes["disorder_strength"])
 
 
 def run_on_cluster(cfg, overrides: Mapping[str, Any] | None = None, *, workers: int | None = None,

@@ -287,8 +287,9 @@ class MeasureSection(_Strict):
 class ExecutionSection(_Strict):
     #: worker processes (0: one per core)
     workers: int = Field(default=0, ge=0, le=4096)
-    #: sweep points per task (0: all (field, gate, energy) points of one sample in one task)
-    batch: int = Field(default=0, ge=0)
+    #: samples per task at least (0: 8); a task is a block of realisations at one geometry
+    #: and strength, all (field, gate, energy) points; fixed when the store is created
+    batch: int = Field(default=0, ge=0, le=100_000)
     #: reuse lead modes across realisations (Kwant precalculate)
     precalculate_leads: bool = True
     #: solve the two spin blocks separately when S_z is conserved ("auto") or never ("off")

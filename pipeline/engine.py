@@ -38,6 +38,7 @@ __all__ = [
     "device_for",
     "system_for",
     "run_task",
+    "run_block",
     "run_sweep",
     "validate_run",
     "local_client",
@@ -239,6 +240,12 @@ def run_task(cfg: SweepConfig, key: tuple[int, int, int]) -> TaskResult:
                 out.status[ib, iv, ie] = STATUS_DONE
     out.seconds = time.perf_counter() - t0
     return out
+
+
+def run_block(cfg: SweepConfig, key: tuple[int, int, int], realisations: list[int]) -> list[TaskResult]:
+    """One task: :func:`run_task` for each of the given realisations of a block."""
+    _, g, s = key
+    return [run_task(cfg, (r, g, s)) for r in realisations]
 
 
 # --------------------------------------------------------------------------- checks before compute
@@ -493,7 +500,7 @@ def run_sweep(
         estimates = check_resources(cfg, n_workers, path, worker_mb)
         facts = describe()
         store = SampleStore.open_for_run(
-            path, cfg, names, fresh=fresh,
+            path, cfg, names, fresh=fresh, n_workers=n_workers,
             provenance={"workers": n_workers, "config_hash": config_hash(cfg), **facts},
         )
         damaged = store.repair_for_resume()
@@ -501,51 +508,50 @@ def run_sweep(
             print(f"{len(damaged)} damaged chunk(s) found (checksum); their tasks will be "
                   f"recomputed: " + ", ".join(f"{n}{k}" for n, k, _ in damaged[:5]),
                   file=sys.stderr)
-        pending = store.pending_tasks(cfg.run.realisations)
-        per_task = int(np.prod([len(v) for k, v in cfg.axes.items()
-                                if k in ("b_perp", "gate_voltage", "energy")]))
+        pending = store.pending_blocks(cfg.run.realisations)
+        points = int(np.prod([len(v) for k, v in cfg.axes.items()
+                              if k in ("b_perp", "gate_voltage", "energy")]))
+        queue = list(pending)[: max_tasks if max_tasks is not None else None]
+        n_tasks = len(queue)
         counts = store.counts()
         if progress:
             print(f"estimated memory per solve {estimates['memory_per_solve_mb']:,.0f} MB "
                   f"(per worker available {estimates['memory_per_worker_mb']:,.0f} MB), store up "
                   f"to {estimates['store_mb']:,.1f} MB", file=sys.stderr)
             print(f"store {path}: {counts['done']} samples done, {len(pending)} tasks "
-                  f"({len(pending) * per_task} samples) to go on {n_workers} worker(s)",
-                  file=sys.stderr)
+                  f"({sum(len(r) for _, r in pending) * points} samples) to go on "
+                  f"{n_workers} worker(s)", file=sys.stderr)
             if getattr(client, "dashboard_link", None):
                 print(f"Dask dashboard: {client.dashboard_link}", file=sys.stderr)
-        bar = _Progress(min(len(pending), max_tasks if max_tasks is not None else len(pending))
-                        * per_task, enabled=progress)
+        bar = _Progress(sum(len(r) for _, r in queue) * points, enabled=progress)
         window = max_in_flight or 4 * n_workers
         cfg_future = client.scatter(cfg, broadcast=True)
-        queue = list(pending)[: max_tasks if max_tasks is not None else None]
-        n_tasks = len(queue)
         futures = {}
         ac = as_completed()
 
         def submit_next():
-            key = queue.pop(0)
-            fut = client.submit(run_task, cfg_future, key, retries=2, pure=False,
+            key, reals = queue.pop(0)
+            fut = client.submit(run_block, cfg_future, key, reals, retries=2, pure=False,
                                 key=f"helisweep-{key[0]}-{key[1]}-{key[2]}-{time.monotonic_ns()}")
-            futures[fut] = key
+            futures[fut] = (key, reals)
             ac.add(fut)
 
         while queue and len(futures) < window:
             submit_next()
         failed = 0
         for fut in ac:
-            key = futures.pop(fut)
-            result = fut.result()
+            key, reals = futures.pop(fut)
+            results = fut.result()
             try:
-                store.write_task(key, result)
+                store.write_block(key, reals, results)
             except OSError as exc:  # full disk, quota, lost mount: stop cleanly, keep the rest
                 raise StoreError(
                     f"writing task {key} to the store {str(path)!r} failed: {exc}. The store "
                     f"keeps every task written before (this one stays missing). Free space or "
                     f"fix the file system, then rerun the same command to resume"
                 ) from exc
-            failed += len(result.failures)
-            bar.update(per_task)
+            failed += sum(len(r.failures) for r in results)
+            bar.update(len(reals) * points)
             if queue:
                 submit_next()
         store.finish_session({"tasks": n_tasks, "failed_samples": failed})

@@ -8,7 +8,8 @@ Layout (``xarray.open_zarr(path)`` reads it; dims and units in attrs)::
     measurements  (..., measurement)     float64   the requested R (h/e^2) and G (e^2/h)
     status        (realisation, ..., energy) int8  0 missing, 1 done, 2 failed
 
-Chunks hold one *task*: one realisation at one geometry and disorder strength, all field,
+Chunks hold one *task*: a block of realisations (``realisation_block`` in the attributes,
+enough for about eight samples per task) at one geometry and disorder strength, all field,
 gate and energy points. Every chunk carries a CRC32C checksum (a Zarr v3 codec), so a
 damaged chunk raises on read instead of being averaged silently. Chunks are written by
 Zarr's local store through a temporary file and a rename, and a task's ``status`` is written
@@ -33,7 +34,8 @@ from zarr.codecs import Crc32cCodec, ZstdCodec
 from .config import AXES, SweepConfig, config_hash
 from .errors import StoreError
 
-__all__ = ["SampleStore", "SWEEP_DIMS", "STATUS_MISSING", "STATUS_DONE", "STATUS_FAILED"]
+__all__ = ["SampleStore", "SWEEP_DIMS", "STATUS_MISSING", "STATUS_DONE", "STATUS_FAILED",
+           "block_size"]
 
 SWEEP_DIMS = ("realisation",) + tuple(AXES)
 STATUS_MISSING, STATUS_DONE, STATUS_FAILED = 0, 1, 2
@@ -65,6 +67,7 @@ class SampleStore:
         *,
         provenance: dict,
         fresh: bool = False,
+        n_workers: int = 1,
     ) -> "SampleStore":
         """Create the store, or reopen it to resume the same configuration.
 
@@ -103,7 +106,7 @@ class SampleStore:
                 store._grow(cfg.run.realisations)
                 store._log_session(provenance)
                 return store
-        store = cls._create(path, cfg, contact_names, digest, provenance)
+        store = cls._create(path, cfg, contact_names, digest, provenance, n_workers)
         store._log_session(provenance)
         return store
 
@@ -118,7 +121,7 @@ class SampleStore:
         return cls(path, group)
 
     @classmethod
-    def _create(cls, path, cfg, contact_names, digest, provenance) -> "SampleStore":
+    def _create(cls, path, cfg, contact_names, digest, provenance, n_workers=1) -> "SampleStore":
         import xarray as xr
         import dask.array as da
 
@@ -127,7 +130,8 @@ class SampleStore:
         sweep_shape = (nr,) + tuple(len(v) for v in axes.values())
         n = len(contact_names)
         labels = list(cfg.measure.report)
-        task_chunk = (1, 1, 1) + sweep_shape[3:]
+        block = block_size(cfg, n_workers)
+        task_chunk = (block, 1, 1) + sweep_shape[3:]
         coords = {"realisation": np.arange(nr, dtype=np.int64)}
         coords.update({k: np.asarray(v, dtype=float) for k, v in axes.items()})
         names = np.array(contact_names, dtype=object)
@@ -180,6 +184,7 @@ class SampleStore:
             config_text=cfg.source_text,
             run_name=cfg.run.name,
             root_seed=cfg.run.seed,
+            realisation_block=block,
             created=_now(),
             sessions=[],
             failures=[],
@@ -215,13 +220,30 @@ class SampleStore:
         """Status of every sample (see module docstring), shape of the sweep grid."""
         return self.group["status"][...]
 
-    def pending_tasks(self, realisations: int | None = None) -> list[tuple[int, int, int]]:
-        """(realisation, geometry, strength) tasks with any sample still missing."""
+    @property
+    def block(self) -> int:
+        """Realisations per chunk and per task (fixed when the store is created)."""
+        return int(self.group.attrs.get("realisation_block", 1))
+
+    def pending_blocks(self, realisations: int | None = None) -> list[tuple[tuple[int, int, int], list[int]]]:
+        """Tasks still to do: ``((first realisation of the block, geometry, strength),
+        [realisations of that block with a sample missing])``."""
         st = self.status()
         if realisations is not None:
             st = st[:realisations]
         missing = (st == STATUS_MISSING).reshape(st.shape[:3] + (-1,)).any(axis=-1)
-        return [tuple(int(x) for x in idx) for idx in np.argwhere(missing)]
+        b = self.block
+        out = []
+        for r0 in range(0, missing.shape[0], b):
+            part = missing[r0:r0 + b]
+            for g, s_ in np.argwhere(part.any(axis=0)):
+                reals = [r0 + int(i) for i in np.flatnonzero(part[:, g, s_])]
+                out.append(((r0, int(g), int(s_)), reals))
+        return out
+
+    def pending_tasks(self, realisations: int | None = None) -> list[tuple[int, int, int]]:
+        """Keys (first realisation of the block, geometry, strength) of unfinished tasks."""
+        return [key for key, _ in self.pending_blocks(realisations)]
 
     def counts(self) -> dict[str, int]:
         st = self.status()
@@ -244,11 +266,14 @@ class SampleStore:
             except Exception:  # noqa: BLE001 - any decode failure is a damaged chunk
                 pass
             nr, ng, ns = arr.shape[:3]
-            for key in np.ndindex(nr, ng, ns):
-                try:
-                    arr[key]
-                except Exception as exc:  # noqa: BLE001
-                    damaged.append((name, tuple(int(k) for k in key), f"{type(exc).__name__}: {exc}"[:200]))
+            b = self.block
+            for r0 in range(0, nr, b):
+                for g, s_ in np.ndindex(ng, ns):
+                    try:
+                        arr[r0:r0 + b, g, s_]
+                    except Exception as exc:  # noqa: BLE001
+                        damaged.append((name, (r0, int(g), int(s_)),
+                                        f"{type(exc).__name__}: {exc}"[:200]))
         return damaged
 
     def repair_for_resume(self) -> list[tuple[str, tuple[int, int, int], str]]:
@@ -260,9 +285,10 @@ class SampleStore:
         damaged = self.verify()
         if damaged:
             status = self.group["status"]
-            shape = status.shape[3:]
-            for _, key, _ in damaged:
-                status[key] = np.zeros(shape, dtype=np.int8)
+            b = self.block
+            for _, (r0, g, s_), _ in damaged:
+                region = status[r0:r0 + b, g, s_]
+                status[r0:r0 + b, g, s_] = np.zeros_like(region)
             notes = list(self.group.attrs.get("repairs", []))
             notes += [{"array": n, "task": list(k), "reason": why, "when": _now()} for n, k, why in damaged]
             self.group.attrs["repairs"] = notes
@@ -306,22 +332,57 @@ class SampleStore:
         return cache[name]
 
     def write_task(self, key: tuple[int, int, int], result: "TaskResult") -> None:
-        """Write one task's samples; its status goes last, so a kill leaves it missing."""
-        r, g, s = key
-        self._array("transmission")[r, g, s] = result.transmission
-        self._array("modes")[r, g, s] = result.modes
-        self._array("measurements")[r, g, s] = result.measurements
-        if result.failures:
-            failures = list(self.group.attrs.get("failures", []))
-            failures += [{"index": [r, g, s, *idx], "reason": why} for idx, why in result.failures]
-            self.group.attrs["failures"] = failures
-        self._array("status")[r, g, s] = result.status
+        """Write the samples of one realisation (a block of one)."""
+        self.write_block((key[0], key[1], key[2]), [key[0]], [result])
+
+    def write_block(self, key: tuple[int, int, int], realisations: list[int],
+                    results: list["TaskResult"]) -> None:
+        """Write a task: the given realisations of the block starting at ``key[0]``.
+
+        Whole chunks are written (one per array); samples of the block that were not
+        recomputed keep their stored values. Status goes last, so a kill leaves the task
+        missing, never half-written.
+        """
+        r0, g, s = key
+        r1 = min(r0 + self.block, self.shape[0])
+        rows = [r - r0 for r in realisations]
+        names = ("transmission", "modes", "measurements", "status")
+        fields = {"transmission": "transmission", "modes": "modes",
+                  "measurements": "measurements", "status": "status"}
+        if len(rows) == r1 - r0:
+            data = {n: np.stack([getattr(res, fields[n]) for res in results]) for n in names}
+        else:  # part of the block is already stored: merge, do not overwrite it
+            data = {n: self._array(n)[r0:r1, g, s] for n in names}
+            for k, res in zip(rows, results):
+                for n in names:
+                    data[n][k] = getattr(res, fields[n])
+        for n in names[:-1]:
+            self._array(n)[r0:r1, g, s] = data[n]
+        failures = [{"index": [r, g, s, *idx], "reason": why}
+                    for r, res in zip(realisations, results) for idx, why in res.failures]
+        if failures:
+            self.group.attrs["failures"] = list(self.group.attrs.get("failures", [])) + failures
+        self._array("status")[r0:r1, g, s] = data["status"]
 
     def finish_session(self, summary: dict) -> None:
         sessions = list(self.group.attrs.get("sessions", []))
         if sessions:
             sessions[-1].update({"finished": _now(), **summary})
         self.group.attrs["sessions"] = sessions
+
+
+def block_size(cfg: SweepConfig, n_workers: int = 1) -> int:
+    """Realisations per task and per chunk: enough for ``execution.batch`` samples per task
+    (default 8), so a sweep of one point per realisation does not pay the per-task overhead
+    (scheduling, one chunk write per array) for every sample -- but small enough to leave
+    about four tasks per worker for load balance. An explicit ``batch`` is taken as given."""
+    points = int(np.prod([len(cfg.axes[k]) for k in ("b_perp", "gate_voltage", "energy")]))
+    block = -(-(cfg.execution.batch or 8) // points)
+    if not cfg.execution.batch:
+        tasks_per_block = len(cfg.axes["geometry"]) * len(cfg.axes["disorder_strength"])
+        balance = cfg.run.realisations * tasks_per_block // (4 * max(n_workers, 1))
+        block = min(block, max(1, balance))
+    return max(1, min(cfg.run.realisations, block))
 
 
 @dataclass

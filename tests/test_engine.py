@@ -30,12 +30,25 @@ def test_same_numbers_on_one_and_two_workers_and_after_resume(tmp_path, tiny_con
     assert np.all(np.isfinite(a["transmission"]))
     # partial run, then resume: only the missing tasks are computed, result identical
     part = run_sweep(cfg, client=dask_clients[2], store_path=tmp_path / "part.zarr",
-                     progress=False, max_tasks=2)
-    assert part.counts()["done"] == 2 * 3 and len(part.pending_tasks()) == 4
+                     progress=False, max_tasks=1)
+    per_task = part.block * 3  # a block of realisations x 3 energies
+    n_tasks = -(-3 // part.block) * 2  # blocks x geometries
+    assert part.counts()["done"] == per_task and len(part.pending_tasks()) == n_tasks - 1
     resumed = run_sweep(cfg, client=dask_clients[1], store_path=tmp_path / "part.zarr", progress=False)
     _assert_same(_arrays(resumed.path), a)
     sessions = resumed.group.attrs["sessions"]
-    assert [s["tasks"] for s in sessions] == [2, 4]
+    assert [s["tasks"] for s in sessions] == [1, n_tasks - 1]
+
+
+def test_same_numbers_whatever_the_batching(tmp_path, tiny_config_text, dask_clients):
+    # one realisation per task versus blocks of several: the samples do not depend on batching
+    single = parse_config(tiny_config_text(realisations=4) + "\n[execution]\nbatch = 1\n")
+    blocked = parse_config(tiny_config_text(realisations=4) + "\n[execution]\nbatch = 12\n")
+    a = run_sweep(single, client=dask_clients[2], store_path=tmp_path / "a.zarr", progress=False)
+    b = run_sweep(blocked, client=dask_clients[2], store_path=tmp_path / "b.zarr", progress=False)
+    assert a.block == 1 and b.block == 4
+    _assert_same(_arrays(a.path), _arrays(b.path))
+    assert b.group.attrs["sessions"][-1]["tasks"] == 2  # one block per geometry
 
 
 def test_disorder_is_fixed_per_realisation_across_energies(tiny_config_text):

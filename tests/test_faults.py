@@ -73,21 +73,22 @@ def test_full_disk_stops_cleanly_and_resume_completes(tmp_path, reference, dask_
     cfg = parse_config(text)
     path = tmp_path / "s.zarr"
     calls = {"n": 0}
-    original = SampleStore.write_task
+    original = SampleStore.write_block
 
-    def failing(self, key, result):
+    def failing(self, key, realisations, results):
         calls["n"] += 1
         if calls["n"] == 4:
             raise OSError(errno.ENOSPC, "No space left on device")
-        return original(self, key, result)
+        return original(self, key, realisations, results)
 
-    monkeypatch.setattr(SampleStore, "write_task", failing)
+    monkeypatch.setattr(SampleStore, "write_block", failing)
     with pytest.raises(StoreError, match="No space left on device") as err:
         engine.run_sweep(cfg, client=dask_clients[2], store_path=path, progress=False)
     assert str(path) in str(err.value)
-    monkeypatch.setattr(SampleStore, "write_task", original)
-    st = SampleStore.open(path).status()  # still readable
-    assert (st == 1).sum() == 3 * 3  # the three tasks written before the failure
+    monkeypatch.setattr(SampleStore, "write_block", original)
+    store = SampleStore.open(path)  # still readable
+    per_task = store.block * 3  # realisations per task x energies
+    assert (store.status() == 1).sum() == 3 * per_task  # the three tasks written before
     engine.run_sweep(cfg, client=dask_clients[2], store_path=path, progress=False)
     _assert_same(_arrays(path), ref)
 
@@ -96,17 +97,19 @@ def test_damaged_chunk_is_detected_never_averaged_and_recomputed(tmp_path, refer
     text, ref = reference
     cfg = parse_config(text)
     path = tmp_path / "s.zarr"
-    engine.run_sweep(cfg, client=dask_clients[2], store_path=path, progress=False)
-    chunk = path / "transmission" / "c" / "2" / "1" / "0" / "0" / "0" / "0" / "0" / "0"
+    store = engine.run_sweep(cfg, client=dask_clients[2], store_path=path, progress=False)
+    b = store.block
+    r0 = (4 // b) * b  # the block holding realisation 4
+    chunk = path / "transmission" / "c" / str(4 // b) / "1" / "0" / "0" / "0" / "0" / "0" / "0"
     assert chunk.is_file()
     data = bytearray(chunk.read_bytes())
     data[len(data) // 2] ^= 0xFF  # one flipped byte
     chunk.write_bytes(bytes(data))
-    assert SampleStore.open(path).verify()[0][:2] == ("transmission", (2, 1, 0))
-    with pytest.raises(AggregateError, match=r"damaged chunk.*transmission task \(2, 1, 0\)"):
+    assert SampleStore.open(path).verify()[0][:2] == ("transmission", (r0, 1, 0))
+    with pytest.raises(AggregateError, match=rf"damaged chunk.*transmission task \({r0}, 1, 0\)"):
         summarize(path)
     store = engine.run_sweep(cfg, client=dask_clients[2], store_path=path, progress=False)
-    assert store.group.attrs["repairs"][0]["task"] == [2, 1, 0]
+    assert store.group.attrs["repairs"][0]["task"] == [r0, 1, 0]
     assert store.group.attrs["sessions"][-1]["tasks"] == 1  # only the damaged task redone
     _assert_same(_arrays(path), ref)
 
