@@ -1132,7 +1132,7 @@ def parse_args(argv=None):
     p.add_argument("--sweep-size", type=Case.parse, default=None,
                    help="size of the sweep benchmark (default: the first strip size)")
     p.add_argument("--sweep-realisations", type=int, default=None,
-                   help="realisations per timed sweep (default 24; --smoke 4)")
+                   help="realisations per timed sweep (default 64; --smoke 4)")
     p.add_argument("--sweep-repeats", type=int, default=None,
                    help="timed sweeps per worker count (default 3; --smoke 1)")
     p.add_argument("--workers", type=int, nargs="+", default=[1, 2],
@@ -1160,7 +1160,7 @@ def parse_args(argv=None):
     if args.sizes is None:
         args.sizes = [Case.parse(s) for s in (SMOKE_SIZES if smoke else DEFAULT_SIZES)]
     for name, full, small in (("repeats", 7, 1), ("memory_samples", 2, 1),
-                              ("sweep_realisations", 24, 4), ("sweep_repeats", 3, 1),
+                              ("sweep_realisations", 64, 4), ("sweep_repeats", 3, 1),
                               ("profile_samples", 5, 2)):
         if getattr(args, name) is None:
             setattr(args, name, small if smoke else full)

@@ -214,12 +214,12 @@ def build_parser() -> argparse.ArgumentParser:
     q.set_defaults(func=_cmd_solve)
 
     q = sub.add_parser("preflight", help="preflight checks for a sweep configuration")
-    q.add_argument("config")
+    q.add_argument("config", help="sweep configuration (TOML, see configs/)")
     q.add_argument("--out", help="directory for the figures (default: the run directory)")
     q.set_defaults(func=_cmd_preflight)
 
     q = sub.add_parser("run", help="run or resume a sweep")
-    q.add_argument("config")
+    q.add_argument("config", help="sweep configuration (TOML, see configs/); rerunning resumes")
     q.add_argument("--workers", type=int, help="local worker processes (default: execution.workers or one per core)")
     q.add_argument("--store", help="store path (default: <run directory>/samples.zarr)")
     q.add_argument("--fresh", action="store_true", help="start anew if the store holds another config (the old store is moved aside)")

@@ -12,39 +12,15 @@ from pipeline.engine import run_sweep
 from pipeline.export import ExportError, make_package, methods_text, verify_package
 from pipeline.figures import load_run
 
+from conftest import TINY_CONFIG  # noqa: E402
 from test_figures import summary_from_store  # noqa: E402  (tests/ is on sys.path)
 
-CONFIG = """
-[run]
-name = "pkg"
-seed = 1234
-realisations = 2
-directory = "{directory}"
-
-[device]
-template = "strip"
-parameters = {{ width = 40.0 }}
-
-[lattice]
-constant = 5.0
-
-[material]
-preset = "hgte-7.0nm"
-
-[contacts]
-doping = 25.0
-
-[[disorder]]
-kind = "anderson"
-width = 30.0
-
-[sweep]
-energy = [-3.0, 1.0]
-geometry = {{ parameter = "length", values = [60.0, 90.0] }}
-
-[measure]
-report = ["G(L,R)", "R(L,R;L,R)"]
-"""
+# the shared tiny configuration (tests/conftest.py): Anderson disorder only, two energies
+CONFIG = (TINY_CONFIG.replace('name = "tiny"', 'name = "pkg"').replace("seed = 42", "seed = 1234")
+          .replace("{realisations}", "2")
+          .replace('[[disorder]]\nkind = "magnetic"\ninplane = 10.0\ndensity = 0.01\naligned = false\n\n', "")
+          .replace("energy = [-3.0, 1.0, 5.0]", "energy = [-3.0, 1.0]")
+          .replace("values = [60.0, 120.0]", "values = [60.0, 90.0]"))
 
 LSTAR = {"measurement": "G(L,R)", "lstar": 70.0, "interval": [62.0, 81.0], "tolerance": 0.05,
          "flags": [], "lambda": 150.0, "lambda_err": 9.0, "xi": 400.0, "xi_err": 30.0,

@@ -25,43 +25,11 @@ from pipeline.figures import (
     measurement_slug,
 )
 
-RUN_CONFIG = """
-[run]
-name = "figs"
-seed = 7
-realisations = 3
-directory = "{directory}"
+# the shared tiny configuration (tests/conftest.py) under another name and seed
+from conftest import TINY_CONFIG  # noqa: E402  (tests/ is on sys.path)
 
-[device]
-template = "strip"
-parameters = {{ width = 40.0 }}
-
-[lattice]
-constant = 5.0
-
-[material]
-preset = "hgte-7.0nm"
-
-[contacts]
-doping = 25.0
-
-[[disorder]]
-kind = "anderson"
-width = 30.0
-
-[[disorder]]
-kind = "magnetic"
-inplane = 10.0
-density = 0.01
-aligned = false
-
-[sweep]
-energy = [-3.0, 1.0, 5.0]
-geometry = {{ parameter = "length", values = [60.0, 120.0] }}
-
-[measure]
-report = ["G(L,R)", "R(L,R;L,R)"]
-"""
+RUN_CONFIG = (TINY_CONFIG.replace('name = "tiny"', 'name = "figs"').replace("seed = 42", "seed = 7")
+              .replace("{realisations}", "3"))
 
 # A clean, wide strip: 400 nm is well over four edge-decay lengths (2 x 53 nm per edge).
 CLEAN_STRIP = """
