@@ -1205,10 +1205,13 @@ def _figure_current(run: RunData, point: Mapping[str, Any] | None) -> _Plot:
     sub += [f"disorder strength {_g(p['disorder_strength'])}",
             f"V_g = {_g(p['gate_voltage'])} V"]
     frac = "n/a (no current)" if math.isnan(cm.edge_fraction) else f"{cm.edge_fraction:.3f}"
-    ax.set_title(f"Local current from contact {cm.lead}: realisation {p['realisation']},\n"
-                 f"E = {_g(p['energy'])} meV, B = {_g(p['b_perp'])} T, " + ", ".join(sub)
-                 + f"\nedge fraction {frac} (share within 2ℓ = {cm.edge_zone:.3g} nm of the "
-                 f"free edges, dashed)", fontsize=9)
+    if cm.edge_distance.size and np.all(cm.edge_distance <= cm.edge_zone):
+        frac += " - uninformative: every site is that close to an edge"
+    # four short lines: the map is often tall and narrow, and one long line was clipped
+    ax.set_title(f"Local current from contact {cm.lead}, realisation {p['realisation']}\n"
+                 f"E = {_g(p['energy'])} meV, B = {_g(p['b_perp'])} T\n" + ", ".join(sub)
+                 + f"\nedge fraction {frac} (within 2ℓ = {cm.edge_zone:.3g} nm of the "
+                 f"free edges, dashed)", fontsize=8)
     near = cm.edge_distance <= cm.edge_zone
     rows = [[x, y, c, d, bool(n)] for (x, y), c, d, n
             in zip(cm.positions, cm.magnitude, cm.edge_distance, near)]
