@@ -138,7 +138,11 @@ def run_concatenation(cfg: SweepConfig, run_dir: str | Path, *, client=None,
                         concat.lstar_dataset(ds), "G(L,R)", point={},
                         quantised=float(ds.attrs["quantised"]), seed=cfg.run.seed)
                     row = {"mode": mode, "energy": energy, "b_perp": b,
-                           "disorder_strength": strength, **res.as_dict()}
+                           "disorder_strength": strength, **res.as_dict(),
+                           "caveat": ("sequences share the pool's segments: the L* interval "
+                                      "resamples sequences and is optimistic; the mean's error "
+                                      "in concatenated.nc (conductance_sem_pool) resamples "
+                                      "the pool")}
                     lstar_rows.append(row)
                     keep = [v for v in ("conductance", "conductance_mean", "conductance_sem",
                                         "conductance_sem_pool", "composition_error") if v in ds]
