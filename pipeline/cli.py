@@ -257,13 +257,18 @@ def build_parser() -> argparse.ArgumentParser:
     return p
 
 
-def main(argv: list[str] | None = None) -> int:
-    args = build_parser().parse_args(argv)
+def run_command(parser: argparse.ArgumentParser, argv: list[str] | None = None) -> int:
+    """Parse and run a subcommand; an error the user can act on becomes a message and exit 2."""
+    args = parser.parse_args(argv)
     try:
         return args.func(args)
     except HelisweepError as exc:
         print(f"helisweep: error: {exc}", file=sys.stderr)
         return 2
+
+
+def main(argv: list[str] | None = None) -> int:
+    return run_command(build_parser(), argv)
 
 
 if __name__ == "__main__":

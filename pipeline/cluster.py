@@ -1080,12 +1080,9 @@ def _build_parser() -> argparse.ArgumentParser:
 
 def main(argv: list[str] | None = None) -> int:
     """Entry point of ``python -m pipeline.cluster`` (``run-in-allocation``, ``slurm-script``)."""
-    args = _build_parser().parse_args(argv)
-    try:
-        return args.func(args)
-    except HelisweepError as exc:
-        print(f"helisweep: error: {exc}", file=sys.stderr)
-        return 2
+    from .cli import run_command
+
+    return run_command(_build_parser(), argv)
 
 
 if __name__ == "__main__":

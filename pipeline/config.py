@@ -386,12 +386,6 @@ class SweepConfig(_Strict):
         return any(b != 0 for b in self.sweep.b_perp)
 
 
-_SECTION_DOCS = {
-    "run": "name, seed, realisations, directory",
-    "device": "template or file, parameters, layer_map",
-}
-
-
 def _nearest_key(loc: tuple, model_fields: list[str]) -> str:
     near = difflib.get_close_matches(str(loc[-1]), model_fields, n=1, cutoff=0.5)
     return f" Did you mean {near[0]!r}?" if near else f" Valid keys here: {', '.join(model_fields)}."

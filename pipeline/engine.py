@@ -262,7 +262,6 @@ def validate_run(
     Returns the contact names. Raises a :class:`HelisweepError` subclass with the fix.
     """
     from .geometry import validate_device
-    from .transport import open_modes
 
     names = None
     for g in range(len(cfg.axes["geometry"])):

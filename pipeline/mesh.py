@@ -21,7 +21,6 @@ therefore finalized once per geometry.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from functools import lru_cache
 
 import kwant
 import numpy as np

@@ -346,16 +346,14 @@ class SampleStore:
         r0, g, s = key
         r1 = min(r0 + self.block, self.shape[0])
         rows = [r - r0 for r in realisations]
-        names = ("transmission", "modes", "measurements", "status")
-        fields = {"transmission": "transmission", "modes": "modes",
-                  "measurements": "measurements", "status": "status"}
+        names = ("transmission", "modes", "measurements", "status")  # TaskResult fields
         if len(rows) == r1 - r0:
-            data = {n: np.stack([getattr(res, fields[n]) for res in results]) for n in names}
+            data = {n: np.stack([getattr(res, n) for res in results]) for n in names}
         else:  # part of the block is already stored: merge, do not overwrite it
             data = {n: self._array(n)[r0:r1, g, s] for n in names}
             for k, res in zip(rows, results):
                 for n in names:
-                    data[n][k] = getattr(res, fields[n])
+                    data[n][k] = getattr(res, n)
         for n in names[:-1]:
             self._array(n)[r0:r1, g, s] = data[n]
         failures = [{"index": [r, g, s, *idx], "reason": why}

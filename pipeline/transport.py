@@ -10,7 +10,6 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-import kwant
 import numpy as np
 
 from .errors import TransportError
