@@ -2,7 +2,7 @@
 VENV ?= .venv
 PY := $(VENV)/bin/python
 
-.PHONY: setup demo test test-fast bench clean-venv
+.PHONY: setup demo test test-fast lint bench clean-venv
 
 setup:
 	@bash scripts/setup.sh
@@ -15,6 +15,11 @@ test: setup
 
 test-fast: setup
 	$(PY) -m pytest -q -m "not slow"
+
+# the layers contract and ruff on their own (tests/test_architecture.py runs both in `make test`)
+lint: setup
+	$(VENV)/bin/lint-imports
+	$(VENV)/bin/ruff check .
 
 clean-venv:
 	rm -rf $(VENV)

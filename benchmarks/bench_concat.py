@@ -32,10 +32,13 @@ import numpy as np  # noqa: E402
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
-from pipeline import concat as cc  # noqa: E402
-from pipeline.disorder import MagneticExchange  # noqa: E402
-from pipeline.materials import PRESETS  # noqa: E402
-from pipeline.transport import MUMPS_ORDERING, SOLVER_NAME  # noqa: E402
+from pipeline.errors import ConcatenationWarning
+from pipeline.longedges.compose import concatenated_conductance
+from pipeline.longedges.direct import direct_conductance
+from pipeline.longedges.pools import segment_smatrices
+from pipeline.physics.disorder import MagneticExchange
+from pipeline.physics.materials import PRESETS
+from pipeline.transport.solver import MUMPS_ORDERING, SOLVER_NAME
 
 WIDTH = 220.0  # nm
 SEGMENT = 1000.0  # nm
@@ -66,13 +69,13 @@ def run(pool_size: int, realisations: int, sequences: int) -> str:
 
     material = PRESETS["hgte-7.0nm"]
     pool, cpu_pool, wall_pool = _timed(
-        cc.segment_smatrices, material, 5.0, WIDTH, SEGMENT, TERMS, energy=ENERGY,
+        segment_smatrices, material, 5.0, WIDTH, SEGMENT, TERMS, energy=ENERGY,
         n_segments=pool_size, seed=11)
-    coh, cpu_coh, _ = _timed(cc.concatenated_conductance, pool, [DIRECT, TARGET], sequences,
+    coh, cpu_coh, _ = _timed(concatenated_conductance, pool, [DIRECT, TARGET], sequences,
                              seed=5, mode="coherent", pool_resamples=100)
-    inc, cpu_inc, _ = _timed(cc.concatenated_conductance, pool, [DIRECT, TARGET], sequences,
+    inc, cpu_inc, _ = _timed(concatenated_conductance, pool, [DIRECT, TARGET], sequences,
                              seed=5, mode="incoherent", pool_resamples=100)
-    direct, cpu_dir, wall_dir = _timed(cc.direct_conductance, pool, DIRECT, realisations,
+    direct, cpu_dir, wall_dir = _timed(direct_conductance, pool, DIRECT, realisations,
                                        seed=999)
     g_dir = direct["conductance"].values[0]
     per_segment = cpu_pool / pool_size
@@ -154,7 +157,7 @@ def main(argv=None) -> int:
                         help="write the table to docs/benchmarks-concat.md")
     args = parser.parse_args(argv)
     with warnings.catch_warnings():
-        warnings.simplefilter("error", cc.ConcatenationWarning)  # the setup must be clean
+        warnings.simplefilter("error", ConcatenationWarning)  # the setup must be clean
         text = run(args.pool, args.realisations, args.sequences)
     print(text)
     if args.write:

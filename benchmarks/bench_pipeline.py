@@ -10,20 +10,20 @@ the script times, interleaved round robin (so load drift hits all variants alike
     ``.finalized()``, then ``kwant.smatrix`` with Kwant's default solver and settings and
     ``transmission(1, 0)`` (the whole transmission matrix for a multi-terminal device).
 ``floor-4band`` / ``floor-spinblock``
-    The bare solver floor: ``pipeline.transport._SOLVER.smatrix`` on a prebuilt system whose
+    The bare solver floor: ``pipeline.transport.SOLVER.smatrix`` on a prebuilt system whose
     lead modes were precalculated, with the same disorder and nothing else; for the full
     four-band system and for the spin-block system (at B = 0 one half-size solve gives both
     spins).
 ``pipeline``
-    ``pipeline.engine.run_task(cfg, key)`` per realisation after a warm-up (system and lead
+    ``pipeline.sweep.tasks.solve_realisation(cfg, key)`` per realisation after a warm-up (system and lead
     modes cached), divided by the samples per task.
 
 All variants solve the same Hamiltonian with the same disorder numbers (the pipeline's
 tag-keyed Anderson draw); the script checks that their transmissions agree.
 
 It also measures the peak memory of each variant in a fresh subprocess (``VmHWM``, see
-:func:`_peak_rss_mb`), the throughput of whole sweeps through ``pipeline.engine.run_sweep``
-on 1 and 2 Dask workers, and profiles ``run_task`` (a breakdown by item, a cProfile listing and
+:func:`_peak_rss_mb`), the throughput of whole sweeps through ``pipeline.sweep.driver.run_sweep``
+on 1 and 2 Dask workers, and profiles ``solve_realisation`` (a breakdown by item, a cProfile listing and
 "what if" solver settings that show what would lower the floor itself).
 
 Run from the repository root on an idle machine::
@@ -77,7 +77,7 @@ VARIANT_TITLES = {
     "naive": "naive loop (rebuild Builder + kwant.smatrix, 4-band)",
     "floor-4band": "bare solver floor, 4-band",
     "floor-spinblock": "bare solver floor, spin block",
-    "pipeline": "pipeline run_task (spin block)",
+    "pipeline": "pipeline solve_realisation (spin block)",
     "baseline": "imports only (no system)",
 }
 
@@ -197,12 +197,12 @@ width = {settings.disorder_width!r}
 energy = {settings.energy!r}
 
 [measure]
-report = ["{report}"]
+labels = ["{report}"]
 """
 
 
 def _config(case: Case, settings: Settings, realisations: int, directory: str):
-    from pipeline.config import parse_config
+    from pipeline.sweep.config import parse_config
 
     return parse_config(case.config_text(settings, realisations=realisations,
                                          directory=directory))
@@ -254,8 +254,8 @@ class Naive(Variant):
     name = "naive"
 
     def setup(self) -> None:
-        from pipeline.materials import PRESETS
-        from pipeline.model import lattice_matrices
+        from pipeline.physics.bhz import lattice_matrices
+        from pipeline.physics.materials import PRESETS
 
         a = self.settings.lattice_constant
         self.h0, self.tx, self.ty = lattice_matrices(PRESETS["hgte-7.0nm"], a)
@@ -270,7 +270,7 @@ class Naive(Variant):
     def sample(self, r: int) -> tuple[float, float]:
         import kwant
 
-        from pipeline.disorder import Anderson
+        from pipeline.physics.disorder import Anderson
 
         s = self.settings
         a, h0, tx, ty = s.lattice_constant, self.h0, self.tx, self.ty
@@ -307,7 +307,7 @@ class Naive(Variant):
 
 
 class Floor(Variant):
-    """``_SOLVER.smatrix`` on a prebuilt, precalculated system; nothing else is timed."""
+    """``SOLVER.smatrix`` on a prebuilt, precalculated system; nothing else is timed."""
 
     def __init__(self, case, settings, workdir, *, spin_block: bool):
         super().__init__(case, settings, workdir)
@@ -315,9 +315,9 @@ class Floor(Variant):
         self.name = "floor-spinblock" if spin_block else "floor-4band"
 
     def setup(self) -> None:
-        from pipeline.engine import device_for
-        from pipeline.materials import PRESETS
-        from pipeline.mesh import build_system
+        from pipeline.physics.materials import PRESETS
+        from pipeline.sweep.runmodel import device_for
+        from pipeline.system.mesh import build_system
 
         s = self.settings
         cfg = _config(self.case, s, 1, self.workdir)
@@ -327,7 +327,7 @@ class Floor(Variant):
         self.fs = self.dsys.fsyst.precalculate(s.energy, params={"onsite_stack": None})
 
     def params_for(self, r: int) -> dict:
-        from pipeline.disorder import Anderson, realise
+        from pipeline.physics.disorder import Anderson, realise
 
         s = self.settings
         pot, _ = realise([Anderson(s.disorder_width)], self.dsys.mesh, seed=s.seed,
@@ -344,36 +344,36 @@ class Floor(Variant):
         return float(smat.transmission(1, 0))
 
     def sample(self, r: int) -> tuple[float, float]:
-        from pipeline.transport import _SOLVER
+        from pipeline.transport.solver import SOLVER
 
         params = self.params_for(r)
         t0 = time.perf_counter()
-        smat = _SOLVER.smatrix(self.fs, self.settings.energy, params=params)
+        smat = SOLVER.smatrix(self.fs, self.settings.energy, params=params)
         dt = time.perf_counter() - t0
         return dt, self.total_t10(smat)
 
 
 class Pipeline(Variant):
-    """``run_task`` per realisation after a warm-up, per sample."""
+    """``solve_realisation`` per realisation after a warm-up, per sample."""
 
     name = "pipeline"
 
     def setup(self) -> None:
-        from pipeline.engine import run_task
+        from pipeline.sweep.tasks import solve_realisation
 
         self.cfg = _config(self.case, self.settings, 1_000_000, self.workdir)
         axes = self.cfg.axes
         self.per_task = len(axes["b_perp"]) * len(axes["gate_voltage"]) * len(axes["energy"])
-        run_task(self.cfg, (0, 0, 0))  # warm-up: builds the system, precalculates the leads
+        solve_realisation(self.cfg, (0, 0, 0))  # warm-up: builds the system, precalculates the leads
 
     def sample(self, r: int) -> tuple[float, float]:
-        from pipeline.engine import run_task
+        from pipeline.sweep.tasks import solve_realisation
 
         t0 = time.perf_counter()
-        res = run_task(self.cfg, (r, 0, 0))
+        res = solve_realisation(self.cfg, (r, 0, 0))
         dt = time.perf_counter() - t0
         if res.failures:
-            raise RuntimeError(f"run_task failed: {res.failures}")
+            raise RuntimeError(f"solve_realisation failed: {res.failures}")
         return dt / self.per_task, float(res.transmission[0, 0, 0, 1, 0])
 
 
@@ -426,9 +426,9 @@ def probe_main(spec: dict) -> None:
     if spec["variant"] == "baseline":
         import kwant  # noqa: F401
 
-        import pipeline.engine  # noqa: F401
-        import pipeline.mesh  # noqa: F401
-        import pipeline.transport  # noqa: F401
+        import pipeline.sweep.driver  # noqa: F401
+        import pipeline.system.mesh  # noqa: F401
+        import pipeline.transport.solver  # noqa: F401
 
         print(json.dumps({"peak_rss_mb": _peak_rss_mb(), "setup_rss_mb": _rss_now_mb()}))
         return
@@ -473,8 +473,11 @@ def measure_sweeps(case, settings, workers, realisations, repeats, workdir, log)
     """
     import psutil
 
-    from pipeline import engine
-    from pipeline.engine import local_client, run_sweep, run_task, validate_run
+    from pipeline.sweep import driver
+    from pipeline.sweep.checks import validate_run
+    from pipeline.sweep.clusters import local_client
+    from pipeline.sweep.driver import run_sweep
+    from pipeline.sweep.tasks import solve_realisation
 
     cfg = _config(case, settings, realisations, workdir)
     axes = cfg.axes
@@ -494,7 +497,7 @@ def measure_sweeps(case, settings, workers, realisations, repeats, workdir, log)
         finally:
             checks.append(time.perf_counter() - t)
 
-    engine.validate_run = timed_validate_run
+    driver.validate_run = timed_validate_run
     clients = {}
     try:
         for n in workers:
@@ -502,7 +505,7 @@ def measure_sweeps(case, settings, workers, realisations, repeats, workdir, log)
             clients[n] = local_client(n)
             logging.getLogger("distributed").setLevel(logging.WARNING)
             clients[n].wait_for_workers(n)
-            clients[n].run(run_task, cfg, (0, 0, 0))
+            clients[n].run(solve_realisation, cfg, (0, 0, 0))
             # one short untimed sweep: first-call costs of the driver, store and scheduler
             warm = Path(workdir) / f"sweep-w{n}-warm-up.zarr"
             run_sweep(cfg, client=clients[n], store_path=warm, progress=False, max_tasks=n)
@@ -536,7 +539,7 @@ def measure_sweeps(case, settings, workers, realisations, repeats, workdir, log)
         return {"case": case.spec, "samples": samples, "validate_s": validate_s,
                 "per_worker": res}
     finally:
-        engine.validate_run = validate_run
+        driver.validate_run = validate_run
         for c in clients.values():
             cluster = c.cluster
             c.close()
@@ -577,7 +580,7 @@ def _whatif_solvers():
     """(label, solver, inject from all leads but the last?) for the "what if" experiment."""
     import kwant.solvers.mumps as mumps
 
-    from pipeline.transport import MUMPS_ORDERING, _SOLVER
+    from pipeline.transport.solver import MUMPS_ORDERING, SOLVER
 
     def plain(**opts):
         s = mumps.Solver()
@@ -587,15 +590,15 @@ def _whatif_solvers():
     big = 1 << 20  # nrhs: all right-hand sides in one MUMPS solve call
     base = dict(ordering=MUMPS_ORDERING)
     return [
-        (f"pipeline solver as is (ordering {_SOLVER.ordering!r} requested, "
-         f"{'sparse' if _SOLVER.sparse_rhs else 'dense'} RHS, nrhs {_SOLVER.nrhs})", _SOLVER,
+        (f"pipeline solver as is (ordering {SOLVER.ordering!r} requested, "
+         f"{'sparse' if SOLVER.sparse_rhs else 'dense'} RHS, nrhs {SOLVER.nrhs})", SOLVER,
          False),
         ("sparse right-hand sides, one solve call (sparse_rhs=True, nrhs=all)",
          plain(**base, sparse_rhs=True, nrhs=big), False),
         ("ordering 'amf'", plain(ordering="amf"), False),
         ("reuse the MUMPS analysis across realisations (prototype)",
          _reuse_analysis_solver(**base), False),
-        ("inject from all leads but one (last column from the sum rule)", _SOLVER, True),
+        ("inject from all leads but one (last column from the sum rule)", SOLVER, True),
         ("all four combined", _reuse_analysis_solver(ordering="amf", sparse_rhs=True, nrhs=big),
          True),
     ]
@@ -631,15 +634,15 @@ def _stat_ct(stats: pstats.Stats, path_end: str, func: str) -> tuple[float, int]
 
 
 def profile_pipeline(case, settings, samples, workdir, log, profile_out=None) -> dict:
-    """What stands between ``run_task`` and the floor, and what would lower the floor."""
+    """What stands between ``solve_realisation`` and the floor, and what would lower the floor."""
     import scipy.sparse as sp
     from kwant.linalg.mumps import MUMPSContext
 
-    from pipeline import engine
-    from pipeline.config import config_hash
-    from pipeline.disorder import realise
-    from pipeline.store import SampleStore
-    from pipeline.transport import _SOLVER
+    from pipeline.physics.disorder import realise
+    from pipeline.sweep import runmodel, tasks
+    from pipeline.sweep.config import config_hash
+    from pipeline.sweep.store import SampleStore
+    from pipeline.transport.solver import SOLVER
 
     s = settings
     pipe = Pipeline(case, s, workdir)
@@ -647,8 +650,8 @@ def profile_pipeline(case, settings, samples, workdir, log, profile_out=None) ->
     cfg = pipe.cfg
     floor = Floor(case, s, workdir, spin_block=True)
     floor.setup()
-    dsys = engine.system_for(cfg, 0, reduced=True)
-    terms = engine._disorder_terms(cfg)
+    dsys = tasks.system_for(cfg, 0, reduced=True)
+    terms = runmodel.disorder_terms(cfg)
     rs = list(range(1, samples + 1))
     n_leads = len(dsys.fsyst.leads)
 
@@ -671,7 +674,7 @@ def profile_pipeline(case, settings, samples, workdir, log, profile_out=None) ->
         return h_const + diag
 
     items = {k: [] for k in (
-        "run_task", "floor", "realise", "block_params", "system_for", "config_hash",
+        "solve_realisation", "floor", "realise", "block_params", "system_for", "config_hash",
         "precalc_lookup", "make_linear_sys", "hamiltonian_submatrix", "value_functions",
         "vector_assembly", "mumps_analysis", "mumps_factor", "mumps_solve")}
     mismatch = 0.0
@@ -679,11 +682,11 @@ def profile_pipeline(case, settings, samples, workdir, log, profile_out=None) ->
     for r in rs:
         gc.collect()
         t = time.perf_counter()
-        engine.run_task(cfg, (r, 0, 0))
-        items["run_task"].append((time.perf_counter() - t) / pipe.per_task)
+        tasks.solve_realisation(cfg, (r, 0, 0))
+        items["solve_realisation"].append((time.perf_counter() - t) / pipe.per_task)
         params = floor.params_for(r)
         t = time.perf_counter()
-        _SOLVER.smatrix(fs, s.energy, params=params)
+        SOLVER.smatrix(fs, s.energy, params=params)
         items["floor"].append(time.perf_counter() - t)
         t = time.perf_counter()
         pot, extra = realise(terms, dsys.mesh, seed=cfg.run.seed, realisation=r,
@@ -692,19 +695,19 @@ def profile_pipeline(case, settings, samples, workdir, log, profile_out=None) ->
         items["realise"].append(time.perf_counter() - t)
         t = time.perf_counter()
         dsys.block_params(potential=pot, onsite_extra=extra,
-                          gate_potentials=engine._gate_potentials(cfg, dsys.device, 0.0))
+                          gate_potentials=runmodel.gate_potentials(cfg, dsys.device, 0.0))
         items["block_params"].append(time.perf_counter() - t)
         t = time.perf_counter()
-        engine.system_for(cfg, 0, reduced=True)
+        tasks.system_for(cfg, 0, reduced=True)
         items["system_for"].append(time.perf_counter() - t)
         t = time.perf_counter()
         config_hash(cfg)
         items["config_hash"].append(time.perf_counter() - t)
         t = time.perf_counter()
-        engine._precalculated(cfg, 0, dsys, s.energy, 0.0)
+        tasks._precalculated(cfg, 0, dsys, s.energy, 0.0)
         items["precalc_lookup"].append(time.perf_counter() - t)
         t = time.perf_counter()
-        linsys, _ = _SOLVER._make_linear_sys(fs, list(range(n_leads)), s.energy,
+        linsys, _ = SOLVER._make_linear_sys(fs, list(range(n_leads)), s.energy,
                                              params=params)
         items["make_linear_sys"].append(time.perf_counter() - t)
         t = time.perf_counter()
@@ -721,7 +724,7 @@ def profile_pipeline(case, settings, samples, workdir, log, profile_out=None) ->
         mismatch = max(mismatch, abs(h_vec - h_ref).max())
         ctx = MUMPSContext()
         t = time.perf_counter()
-        ctx.analyze(linsys.lhs, ordering=_SOLVER.ordering)
+        ctx.analyze(linsys.lhs, ordering=SOLVER.ordering)
         items["mumps_analysis"].append(time.perf_counter() - t)
         ordering_used = int(ctx.mumps_instance.infog[7])
         t = time.perf_counter()
@@ -729,13 +732,13 @@ def profile_pipeline(case, settings, samples, workdir, log, profile_out=None) ->
         items["mumps_factor"].append(time.perf_counter() - t)
         b = sp.hstack([m for m in linsys.rhs if m.shape[1]]).tocsc()
         t = time.perf_counter()
-        for j in range(0, b.shape[1], _SOLVER.nrhs):  # as kwant.solvers.mumps does
-            ctx.solve(b[:, j:j + _SOLVER.nrhs].toarray())
+        for j in range(0, b.shape[1], SOLVER.nrhs):  # as kwant.solvers.mumps does
+            ctx.solve(b[:, j:j + SOLVER.nrhs].toarray())
         items["mumps_solve"].append(time.perf_counter() - t)
     log("  profile: direct timings done")
 
     # ---- objects shipped between driver and workers, and the driver's Zarr write
-    res = engine.run_task(cfg, (1, 0, 0))
+    res = tasks.solve_realisation(cfg, (1, 0, 0))
     t = time.perf_counter()
     blob = pickle.dumps(res)
     pickle_s = time.perf_counter() - t
@@ -746,15 +749,15 @@ def profile_pipeline(case, settings, samples, workdir, log, profile_out=None) ->
     writes = []
     for r in rs:
         t = time.perf_counter()
-        store.write_task((r, 0, 0), res)
+        store.write_block((r, 0, 0), [r], [res])
         writes.append(time.perf_counter() - t)
     shutil.rmtree(store_path, ignore_errors=True)
 
-    # ---- cProfile of run_task
+    # ---- cProfile of solve_realisation
     prof = cProfile.Profile()
     prof.enable()
     for r in rs:
-        engine.run_task(cfg, (r, 0, 0))
+        tasks.solve_realisation(cfg, (r, 0, 0))
     prof.disable()
     if profile_out:
         prof.dump_stats(profile_out)
@@ -762,21 +765,21 @@ def profile_pipeline(case, settings, samples, workdir, log, profile_out=None) ->
     n = len(rs) * pipe.per_task
     cp = {}
     for key, (path_end, func) in {
-        "run_task": ("pipeline/engine.py", "run_task"),
+        "solve_realisation": ("pipeline/sweep/tasks.py", "solve_realisation"),
         "smatrix": ("kwant/solvers/common.py", "smatrix"),
         "make_linear_sys": ("kwant/solvers/common.py", "_make_linear_sys"),
         "hamiltonian_submatrix": ("_system.pyx", "hamiltonian_submatrix"),
-        "value_functions": ("pipeline/mesh.py", "onsite"),
+        "value_functions": ("pipeline/system/mesh.py", "onsite"),
         "mumps_analysis": ("kwant/linalg/mumps.py", "analyze"),
         "mumps_factor_total": ("kwant/linalg/mumps.py", "factor"),
         "mumps_solve": ("kwant/solvers/mumps.py", "_solve_linear_sys"),
-        "realise": ("pipeline/disorder.py", "realise"),
-        "block_params": ("pipeline/mesh.py", "block_params"),
-        "system_for": ("pipeline/engine.py", "system_for"),
-        "config_hash": ("pipeline/config.py", "config_hash"),
+        "realise": ("pipeline/physics/disorder.py", "realise"),
+        "block_params": ("pipeline/system/mesh.py", "block_params"),
+        "system_for": ("pipeline/sweep/tasks.py", "system_for"),
+        "config_hash": ("pipeline/sweep/config.py", "config_hash"),
         "lead_modes": ("kwant/physics/leads.py", "modes"),
         "precalculate": ("kwant/system.py", "precalculate"),
-        "parse_measurement": ("pipeline/landauer.py", "parse_measurement"),
+        "parse_measurement": ("pipeline/transport/landauer.py", "parse_measurement"),
         "transmission": ("kwant/solvers/common.py", "transmission"),
     }.items():
         ct, nc = _stat_ct(stats, path_end, func)
@@ -793,7 +796,7 @@ def profile_pipeline(case, settings, samples, workdir, log, profile_out=None) ->
     # ---- what if: solver settings on the same spin-block problem, round robin
     whatifs = _whatif_solvers()
     ref = {}
-    for label, solver, skip in whatifs:  # warm-up (and the reuse prototype's first analysis)
+    for _label, solver, skip in whatifs:  # warm-up (and the reuse prototype's first analysis)
         _transmissions(solver, fs, s.energy, floor.params_for(0), skip)
     wi_times = {label: [] for label, _, _ in whatifs}
     wi_dev = {label: 0.0 for label, _, _ in whatifs}
@@ -806,14 +809,14 @@ def profile_pipeline(case, settings, samples, workdir, log, profile_out=None) ->
             T = _transmissions(solver, fs, s.energy, params, skip)
             wi_times[label].append(time.perf_counter() - t)
             if r not in ref:
-                ref[r] = _transmissions(_SOLVER, fs, s.energy, params, False)
+                ref[r] = _transmissions(SOLVER, fs, s.energy, params, False)
             wi_dev[label] = max(wi_dev[label], float(np.abs(T - ref[r]).max()))
     log("  profile: solver what-ifs done")
     return {
         "case": case.spec, "samples": len(rs),
         "direct": {k: _median(v) for k, v in items.items()},
         "assembly_mismatch": float(mismatch), "ordering_used": ordering_used,
-        "ordering_requested": _SOLVER.ordering, "nrhs": _SOLVER.nrhs,
+        "ordering_requested": SOLVER.ordering, "nrhs": SOLVER.nrhs,
         "result_bytes": len(blob), "result_pickle_s": pickle_s, "cfg_bytes": cfg_bytes,
         "zarr_write_s": _median(writes), "cprofile": cp, "listing": listing,
         "whatif": [{"label": label, "median_s": _median(wi_times[label]),
@@ -826,9 +829,9 @@ _ORDERINGS = {0: "amd", 2: "amf", 3: "scotch", 4: "pord", 5: "metis", 6: "qamd",
 
 
 def machine_description() -> dict:
-    from pipeline.environment import describe
-
     import kwant.solvers.default as default
+
+    from pipeline.transport.environment import describe
 
     cpu = "unknown"
     try:
@@ -903,7 +906,7 @@ def render(args, cases, machine, timing, memory, sweep, prof) -> str:
     L.append(f"| load average (1, 5, 15 min) at start / end | "
              f"{ls[0]:.2f}, {ls[1]:.2f}, {ls[2]:.2f} / {le[0]:.2f}, {le[1]:.2f}, {le[2]:.2f} |")
     L.append(f"| Kwant | {machine['kwant']}, solver `{machine['kwant_solver']}` "
-             f"(`pipeline.environment.describe()`) |")
+             f"(`pipeline.transport.environment.describe()`) |")
     L.append(f"| BLAS under MUMPS | {machine['blas']} |")
     L.append(f"| threads | {machine['threads']} in the benchmark process and every worker |")
     L.append(f"| Kwant default solver (naive loop) | MUMPS, ordering "
@@ -912,7 +915,7 @@ def render(args, cases, machine, timing, memory, sweep, prof) -> str:
     L.append(f"| MUMPS orderings available | {machine['mumps_orderings']} |")
     if prof:
         used = _ORDERINGS.get(prof["ordering_used"], str(prof["ordering_used"]))
-        L.append(f"| pipeline solver (`_SOLVER`) | MUMPS, ordering `{prof['ordering_requested']}`"
+        L.append(f"| pipeline solver (`SOLVER`) | MUMPS, ordering `{prof['ordering_requested']}`"
                  f" requested, MUMPS used `{used}` (INFOG(7) = {prof['ordering_used']}), "
                  f"nrhs {prof['nrhs']} |")
     L.append(f"| Python, NumPy, SciPy | {machine['python']}, {machine['numpy']}, "
@@ -1044,11 +1047,11 @@ def render(args, cases, machine, timing, memory, sweep, prof) -> str:
 
     if prof:
         d, cp = prof["direct"], prof["cprofile"]
-        rt = d["run_task"]
+        rt = d["solve_realisation"]
         L.append(f"## Profile of the pipeline path ({Case.parse(prof['case']).label})\n")
         L.append(f"Direct timings (medians over {prof['samples']} realisations, no profiler) "
-                 f"and cProfile of the same `run_task` calls (cProfile inflates Python-heavy "
-                 f"items). Shares are of the direct `run_task` time.\n")
+                 f"and cProfile of the same `solve_realisation` calls (cProfile inflates Python-heavy "
+                 f"items). Shares are of the direct `solve_realisation` time.\n")
         L.append("| item | direct s/sample | share | cProfile s/sample |")
         L.append("|---|---:|---:|---:|")
 
@@ -1058,10 +1061,10 @@ def render(args, cases, machine, timing, memory, sweep, prof) -> str:
             L.append(f"| {label}{extra} | {_f(direct) if direct is not None else '—'} | "
                      f"{share} | {c} |")
 
-        row("`run_task` (whole task, per sample)", rt, "run_task")
-        row("bare floor: `_SOLVER.smatrix` on the precalculated spin-block system", d["floor"],
+        row("`solve_realisation` (whole task, per sample)", rt, "solve_realisation")
+        row("bare floor: `SOLVER.smatrix` on the precalculated spin-block system", d["floor"],
             "smatrix")
-        row("`run_task` − floor", rt - d["floor"])
+        row("`solve_realisation` − floor", rt - d["floor"])
         row("&nbsp;&nbsp;disorder generation (`realise`)", d["realise"], "realise")
         row("&nbsp;&nbsp;onsite stack + spin split (`block_params`)", d["block_params"],
             "block_params")
@@ -1090,10 +1093,10 @@ def render(args, cases, machine, timing, memory, sweep, prof) -> str:
         pc = cp["precalculate"]["calls_per_sample"]
         L.append(f"- Lead modes: {lm:g} `kwant.physics.modes` call(s) and {pc:g} `precalculate`"
                  f" call(s) per sample in the profiled tasks (0 and 0: the cache works).")
-        L.append(f"- Shipped per task: the `TaskResult` pickles to {prof['result_bytes']:,} "
+        L.append(f"- Shipped per task: the `RealisationSamples` of a realisation pickles to {prof['result_bytes']:,} "
                  f"bytes in {_ms(prof['result_pickle_s'])}; the config "
                  f"({prof['cfg_bytes']:,} bytes pickled) is scattered once per sweep.")
-        L.append(f"- Zarr: `SampleStore.write_task` takes {_ms(prof['zarr_write_s'])} per task "
+        L.append(f"- Zarr: `SampleStore.write_block` takes {_ms(prof['zarr_write_s'])} per task "
                  f"on the driver (not on a worker's critical path, but on the same 2 cores).")
         L.append(f"- `parse_measurement` per task: "
                  f"{_ms(cp['parse_measurement']['s_per_sample'])} (cProfile).")
@@ -1203,7 +1206,7 @@ def main(argv=None) -> int:
                                    args.sweep_realisations, args.sweep_repeats, workdir, log)
         prof = None
         if not args.no_profile:
-            log("profile of run_task")
+            log("profile of solve_realisation")
             prof = profile_pipeline(args.profile_size, args.settings, args.profile_samples,
                                     workdir, log, args.profile_out)
     machine["load_end"] = os.getloadavg()

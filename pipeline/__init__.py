@@ -1,10 +1,13 @@
 """helisweep: disorder-averaged edge transport in quantum spin Hall devices.
 
-Stages (one module each): :mod:`geometry` (device outlines, contacts, gates),
-:mod:`geometry_io` (GeoJSON, WKT, GDSII), :mod:`materials` (BHZ parameter presets),
-:mod:`model` (BHZ tight-binding values), :mod:`mesh` (outline -> Kwant system with leads),
-:mod:`transport` (scattering -> transmission matrix), :mod:`landauer` (Landauer-Buttiker
-resistances, independent of Kwant), :mod:`preflight` (checks before a sweep).
+One subpackage per stage, each importing only the ones below it (checked by the layers
+contract in ``pyproject.toml``), from the top: :mod:`~pipeline.cli` (the command),
+:mod:`~pipeline.output` (figures, package), :mod:`~pipeline.longedges` (composed long edges),
+:mod:`~pipeline.analysis` (statistics, L*), :mod:`~pipeline.sweep` (config, run model, store,
+execution), :mod:`~pipeline.transport` (transmissions, Landauer-Buttiker),
+:mod:`~pipeline.system` (meshing into Kwant, preflight), :mod:`~pipeline.physics` (materials,
+BHZ model, disorder) and :mod:`~pipeline.device` (outlines); at the bottom
+:mod:`~pipeline.errors`, :mod:`~pipeline.constants` and :mod:`~pipeline.timestamps`.
 """
 
 import os as _os

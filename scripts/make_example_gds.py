@@ -5,7 +5,7 @@ The device is a four-terminal cross on the invented wafer QW-Tarn-7: two 200 nm 
 800 nm long, crossing at right angles. Layout units are µm (library unit 1e-6 m, database grid
 1 nm) so loading it exercises the unit conversion to nm.
 
-Layers (layer/datatype, the default map of :func:`pipeline.geometry_io.load_device`):
+Layers (layer/datatype, the default map of :func:`pipeline.device.readers.load_device`):
 
 * 1/0 mesa: the two bars as separate, overlapping rectangles (the loader unions them);
 * 2/0 contact pads: one per arm end, as wide as the arm, overlapping it by 20 nm and reaching

@@ -66,4 +66,4 @@ else
 fi
 
 # ---- 3. report ----------------------------------------------------------------------------
-"$VENV/bin/python" -m pipeline.environment
+"$VENV/bin/python" -m pipeline.transport.environment

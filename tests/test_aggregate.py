@@ -10,15 +10,13 @@ import scipy.stats
 import xarray as xr
 from scipy.special import expit
 
-from pipeline.aggregate import (
-    AggregateError,
+from pipeline.analysis.statistics import (
     bootstrap_mean_ci,
     sample_statistics,
-    save_summary,
     smear_transmission,
-    summarize,
     thermal_weights,
 )
+from pipeline.analysis.summary import AggregateError, save_summary, summarize
 from pipeline.constants import K_B_MEV_PER_K
 
 LABELS = ["G(L,R)", "R(L,R;L,R)"]
@@ -341,8 +339,8 @@ def test_coarse_grid_skips_the_temperature_with_a_warning():
 def partial_store(tmp_path_factory, dask_clients):
     from conftest import TINY_CONFIG
 
-    from pipeline.config import parse_config
-    from pipeline.engine import run_sweep
+    from pipeline.sweep.config import parse_config
+    from pipeline.sweep.driver import run_sweep
 
     root = tmp_path_factory.mktemp("agg")
     cfg = parse_config(TINY_CONFIG.format(realisations=3, directory=str(root / "run")))

@@ -7,11 +7,11 @@ from pathlib import Path
 
 import gdstk
 import pytest
+from conftest import tiny_config
 
-from conftest import TINY_CONFIG
-from pipeline.cli import main
-from pipeline.config import parse_config
-from pipeline.engine import run_sweep
+from pipeline.cli.main import main
+from pipeline.sweep.config import parse_config
+from pipeline.sweep.driver import run_sweep
 
 STRIP = [[0, 0], [120, 0], [120, 40], [0, 40], [0, 0]]
 
@@ -63,8 +63,8 @@ CASES = {
     "gapless material": ({"changes": {'preset = "hgte-7.0nm"': 'preset = "hgte-7.0nm"\nD = 700.0'}}, "no bulk gap"),
     "unknown disorder kind": ({"changes": {'kind = "anderson"': 'kind = "gaussian"'}}, "disorder"),
     "negative disorder": ({"changes": {"width = 30.0": "width = -30.0"}}, "greater than or equal to 0"),
-    "bad measurement label": ({"changes": {'report = ["G(L,R)", "R(L,R;L,R)"]': 'report = ["R1"]'}}, "cannot read measurement"),
-    "measurement on unknown contact": ({"changes": {'report = ["G(L,R)", "R(L,R;L,R)"]': 'report = ["G(L,X)"]'}}, "contact 'X'"),
+    "bad measurement label": ({"changes": {'labels = ["G(L,R)", "R(L,R;L,R)"]': 'labels = ["R1"]'}}, "cannot read measurement"),
+    "measurement on unknown contact": ({"changes": {'labels = ["G(L,R)", "R(L,R;L,R)"]': 'labels = ["G(L,X)"]'}}, "contact 'X'"),
     "gate sweep without lever arm": ({"changes": {"gate_voltage = 0.0": "gate_voltage = [0.0, 0.5]"}}, "lever arm"),
     "more samples than the disk holds": ({"changes": {"realisations = 3": "realisations = 9000000",
                                                       "energy = [-3.0, 1.0, 5.0]": "energy = { start = -5, stop = 5, num = 4001 }"}},
@@ -95,7 +95,7 @@ CASES = {
 @pytest.fixture(scope="module")
 def existing_run(tmp_path_factory, dask_clients):
     d = tmp_path_factory.mktemp("existing")
-    text = TINY_CONFIG.format(realisations=2, directory=str(d))
+    text = tiny_config(d, realisations=2)
     store = run_sweep(parse_config(text), client=dask_clients[1], store_path=d / "samples.zarr",
                       progress=False)
     return store.path
@@ -116,7 +116,7 @@ def test_the_table_has_at_least_thirty_cases():
 @pytest.mark.parametrize("name", list(CASES))
 def test_bad_input_is_refused_before_compute(name, tmp_path, existing_run, capsys):
     case, message = CASES[name]
-    text = TINY_CONFIG.format(realisations=3, directory=str(tmp_path / "run"))
+    changes = case["changes"]
     if "file" in case:
         suffix, content = case["file"]
         geo = tmp_path / f"device{suffix}"
@@ -124,11 +124,8 @@ def test_bad_input_is_refused_before_compute(name, tmp_path, existing_run, capsy
             gds_without_contact_layer(geo)
         else:
             geo.write_text(content)
-        case = dict(case)
-        case["changes"] = {k: v.replace("{file}", geo.name) for k, v in case["changes"].items()}
-    for old, new in case["changes"].items():
-        assert old in text, f"case {name!r}: {old!r} not in the base config"
-        text = text.replace(old, new)
+        changes = {k: v.replace("{file}", geo.name) for k, v in changes.items()}
+    text = tiny_config(tmp_path / "run", realisations=3, **changes)
     config = tmp_path / "bad.toml"
     config.write_text(text)
     before = _fingerprint(existing_run)

@@ -32,7 +32,7 @@ def test_smoke_run_prints_the_tables_and_writes_the_report(tmp_path):
     assert COLUMNS in text
     # one row per variant and size
     for variant in ("naive loop", "bare solver floor, 4-band", "bare solver floor, spin block",
-                    "pipeline run_task"):
+                    "pipeline solve_realisation"):
         for size in ("strip 12×6", "hbar 8×6×4×8"):
             assert any(line.startswith(f"| {variant}") and size in line
                        for line in text.splitlines()), (variant, size)

@@ -8,6 +8,7 @@ batch script's logic for real without Slurm, with a stand-in ``srun``.
 """
 
 import argparse
+import dataclasses
 import os
 import shlex
 import subprocess
@@ -15,27 +16,25 @@ import sys
 import warnings
 from pathlib import Path
 
-import numpy as np
 import pytest
-import xarray as xr
+from conftest import assert_same_samples, store_arrays
 
-from pipeline import cluster as cl
-from pipeline.cluster import (
+import pipeline.sweep.clusters as cl
+from pipeline.cli.main import main
+from pipeline.cli.slurm import add_cluster_options, cluster_overrides
+from pipeline.errors import ConfigError, HelisweepError
+from pipeline.sweep.clusters import (
     DEFAULTS,
     ClusterError,
     SharedPathWarning,
-    add_cluster_options,
-    cluster_overrides,
     make_client,
     render_batch_script,
     resolve_cluster_settings,
-    run_in_allocation,
-    run_on_cluster,
     slurm_cluster,
     submit_batch_script,
 )
-from pipeline.config import ClusterSection, parse_config
-from pipeline.errors import ConfigError, HelisweepError
+from pipeline.sweep.config import ClusterSection, parse_config
+from pipeline.sweep.driver import run_in_allocation, run_on_cluster, run_sweep
 
 #: a directory/file name with a space, both quotes, $, ;, a backquote and a glob
 AWKWARD = "a b'c\"d$HOME;e`id`*"
@@ -227,11 +226,13 @@ def test_store_on_node_local_directory_warns(tmp_path, tiny_config_text, monkeyp
     s = _slurm(shared_directory="/nonexistent-shared/helisweep")
     with pytest.warns(SharedPathWarning, match="the store '/tmp/x.zarr'"):
         render_batch_script(cfg_path, s, store_path="/tmp/x.zarr", job_name="j")
-    with warnings.catch_warnings():
-        warnings.simplefilter("error", SharedPathWarning)
-        render_batch_script(cfg_path, s, store_path="/nonexistent-shared/x.zarr", job_name="j")
-    assert cl._node_local("/tmp") and cl._node_local("/dev/shm/a")
-    assert not cl._node_local("/tmpfoo/a") and not cl._node_local("/home/u/runs")
+    for store in ("/tmp", "/dev/shm/a", "/var/tmp/b.zarr"):  # node-local directories
+        with pytest.warns(SharedPathWarning, match=f"the store '{store}'"):
+            render_batch_script(cfg_path, s, store_path=store, job_name="j")
+    for store in ("/nonexistent-shared/x.zarr", "/tmpfoo/a", "/home/u/runs"):  # shared
+        with warnings.catch_warnings():
+            warnings.simplefilter("error", SharedPathWarning)
+            render_batch_script(cfg_path, s, store_path=store, job_name="j")
 
 
 def test_template_placeholders_must_match(tmp_path, tiny_config_text):
@@ -305,21 +306,59 @@ def test_config_keys_count_only_when_written(tmp_path, tiny_config_text, monkeyp
     assert s.kind == "local" and s.extra_directives == ()
 
 
-def test_highest_layer_with_a_scaling_key_chooses_fixed_or_adaptive(tmp_path, tiny_config_text):
+class _RecordingCluster:
+    """Stands in for a SLURMCluster: records the bounds ``make_client`` gives ``adapt``."""
+
+    def __init__(self):
+        self.bounds = None
+        self.closed = False
+
+    def adapt(self, *, minimum_jobs, maximum_jobs):
+        self.bounds = (minimum_jobs, maximum_jobs)
+
+    def close(self):
+        self.closed = True
+
+
+class _IdleClient:
+    """Stands in for a Dask client of the recording cluster (nothing to connect to)."""
+
+    def __init__(self, cluster):
+        self.cluster = cluster
+
+    def close(self):
+        pass
+
+
+def _adapt_bounds(settings, n_workers_hint, monkeypatch):
+    """(minimum_jobs, maximum_jobs) with which make_client scales a Slurm cluster of these
+    settings (whatever their kind)."""
+    cluster = _RecordingCluster()
+    monkeypatch.setattr(cl, "slurm_cluster", lambda settings, job_name: cluster)
+    monkeypatch.setattr("dask.distributed.Client", _IdleClient)
+    _, close = make_client(dataclasses.replace(settings, kind="slurm"),
+                           n_workers_hint=n_workers_hint)
+    close()
+    assert cluster.closed
+    return cluster.bounds
+
+
+def test_highest_layer_with_a_scaling_key_chooses_fixed_or_adaptive(tmp_path, tiny_config_text,
+                                                                   monkeypatch):
     site = tmp_path / "site.toml"
     site.write_text("[cluster]\njobs = 4\nadaptive_maximum = 20\n")
     cfg = _config_with_cluster(tiny_config_text,
                                f'adaptive_maximum = 6\nsite_defaults = "{site}"\n')
     s = resolve_cluster_settings(cfg.cluster, {})
     assert s.jobs is None and s.adaptive_maximum == 6 and s.adaptive_minimum == 1
-    assert cl._scale_bounds(s, 0) == (1, 6)
-    assert cl._scale_bounds(s, 3) == (1, 3)  # never more jobs than tasks
+    assert _adapt_bounds(s, 0, monkeypatch) == (1, 6)
+    assert _adapt_bounds(s, 3, monkeypatch) == (1, 3)  # never more jobs than tasks
     s = resolve_cluster_settings(cfg.cluster, {"jobs": 3})
-    assert s.jobs == 3 and cl._scale_bounds(s, 0) == (3, 3)
+    assert s.jobs == 3 and _adapt_bounds(s, 0, monkeypatch) == (3, 3)
     s = resolve_cluster_settings(None, {"site_defaults": str(site)})
     assert s.jobs == 4 and s.max_workers == 4
     s = resolve_cluster_settings(None, {"site_defaults": str(site), "cores": 4})
-    assert cl._scale_bounds(s, 9) == (3, 3)  # 9 tasks fill 3 jobs of 4 cores
+    assert _adapt_bounds(s, 9, monkeypatch) == (3, 3)  # 9 tasks fill 3 jobs of 4 cores
 
 
 def test_memory_defaults_to_two_gigabytes_per_core():
@@ -409,7 +448,7 @@ def test_slurm_script_command_writes_a_valid_script(tmp_path, tiny_config_text, 
     out = tmp_path / "job.sbatch"
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", SharedPathWarning)
-        rc = cl.main(["slurm-script", str(cfg_path), "--partition", "debug", "--cores", "2",
+        rc = main(["slurm-script", str(cfg_path), "--partition", "debug", "--cores", "2",
                       "--jobs", "3", "--walltime", "00:20:00", "--out", str(out),
                       "--shared-directory", str(tmp_path / "shared")])
     assert rc == 0
@@ -418,7 +457,7 @@ def test_slurm_script_command_writes_a_valid_script(tmp_path, tiny_config_text, 
     assert (opts["--ntasks"], opts["--partition"], opts["--time"]) == ("6", "debug", "00:20:00")
     assert (tmp_path / "shared" / "logs").is_dir()  # sbatch does not create the log directory
     subprocess.run(["bash", "-n", str(out)], check=True)
-    rc = cl.main(["slurm-script", str(cfg_path), "--walltime", "20 minutes"])
+    rc = main(["slurm-script", str(cfg_path), "--walltime", "20 minutes"])
     assert rc == 2
     assert "'20 minutes'" in capsys.readouterr().err
 
@@ -459,7 +498,7 @@ def test_slurm_script_submit_prints_the_job_id(tmp_path, tiny_config_text, monke
     cfg_path = _write_config(tmp_path, tiny_config_text(), name="tiny.toml")
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", SharedPathWarning)
-        assert cl.main(["slurm-script", str(cfg_path), "--submit",
+        assert main(["slurm-script", str(cfg_path), "--submit",
                         "--shared-directory", str(tmp_path / "sh")]) == 0
     assert "submitted batch job 77" in capsys.readouterr().out
     assert len(list((tmp_path / "sh").glob("helisweep-*.sbatch"))) == 1
@@ -472,27 +511,19 @@ def test_workers_option_is_refused_for_slurm(tiny_config_text):
 
 
 # =========================================================================== running (no Slurm)
-def _arrays(path):
-    ds = xr.open_zarr(str(path), consolidated=False)
-    return {k: ds[k].values for k in ("transmission", "modes", "measurements", "status")}
-
-
 @pytest.fixture
 def tiny_reference(tmp_path, tiny_config_text, dask_clients):
     """The tiny sweep (one realisation) run on the shared local cluster: the reference."""
-    from pipeline.engine import run_sweep
-
     cfg = parse_config(tiny_config_text(realisations=1))
     run_sweep(cfg, client=dask_clients[2], store_path=tmp_path / "ref.zarr", progress=False)
-    return _arrays(tmp_path / "ref.zarr")
+    return store_arrays(tmp_path / "ref.zarr")
 
 
 def test_local_kind_runs_through_make_client(tmp_path, tiny_config_text, tiny_reference):
     cfg = parse_config(tiny_config_text(realisations=1))
     store = run_on_cluster(cfg, {"kind": "local"}, workers=1, store_path=tmp_path / "l.zarr",
                            progress=False)
-    for k, v in _arrays(store.path).items():
-        np.testing.assert_array_equal(v, tiny_reference[k], err_msg=k)
+    assert_same_samples(store_arrays(store.path), tiny_reference)
     client, close = make_client(_slurm(kind="local"), n_workers_hint=1)
     assert len(client.scheduler_info()["workers"]) == 1
     close()
@@ -550,6 +581,5 @@ def test_batch_script_runs_without_slurm_using_a_stand_in_srun(tmp_path, tiny_co
                          timeout=300)
     assert out.returncode == 0, out.stderr[-3000:]
     assert "6 done, 0 failed, 0 missing of 6 samples" in out.stdout + out.stderr
-    for k, v in _arrays(store).items():
-        np.testing.assert_array_equal(v, tiny_reference[k], err_msg=k)
+    assert_same_samples(store_arrays(store), tiny_reference)
     assert not stale.exists()  # removed at the end as well

@@ -4,8 +4,8 @@ from pathlib import Path
 
 import pytest
 
-from pipeline.config import config_hash, load_config, parse_config
 from pipeline.errors import ConfigError, HelisweepError
+from pipeline.sweep.config import config_hash, load_config, parse_config
 
 CONFIGS = sorted((Path(__file__).resolve().parents[1] / "configs").glob("*.toml"))
 
@@ -13,7 +13,7 @@ CONFIGS = sorted((Path(__file__).resolve().parents[1] / "configs").glob("*.toml"
 @pytest.mark.parametrize("path", CONFIGS, ids=[p.name for p in CONFIGS])
 def test_shipped_configs_are_valid(path):
     cfg = load_config(path)
-    assert cfg.run.realisations >= 1 and cfg.measure.report
+    assert cfg.run.realisations >= 1 and cfg.measure.labels
 
 
 def test_axes_ranges_and_defaults(tiny_config_text):
@@ -51,8 +51,8 @@ BAD = [
     ({"energy = [-3.0, 1.0, 5.0]": "energy = { start = 0, stop = 1 }"}, "exactly one of num or step"),
     ({'kind = "anderson"': 'kind = "andersen"'}, "disorder[0]"),
     ({"width = 30.0": "width = -1.0"}, "greater than or equal to 0"),
-    ({'report = ["G(L,R)", "R(L,R;L,R)"]': 'report = ["R14"]'}, "cannot read measurement"),
-    ({'report = ["G(L,R)", "R(L,R;L,R)"]': "report = []"}, "measure.report"),
+    ({'labels = ["G(L,R)", "R(L,R;L,R)"]': 'labels = ["R14"]'}, "cannot read measurement"),
+    ({'labels = ["G(L,R)", "R(L,R;L,R)"]': "labels = []"}, "measure.labels"),
     ({"gate_voltage = 0.0": "gate_voltage = [0.0, 1.0]"}, "lever arm"),
     ({'parameter = "length"': 'parameter = "lenght"'}, "not a parameter of template"),
     ({"values = [60.0, 120.0]": "values = [-60.0, 120.0]"}, "must be positive"),

@@ -8,9 +8,9 @@ import shapely
 from scipy import stats
 from shapely.geometry import LineString, Polygon, box
 
-from pipeline import disorder as dis
+import pipeline.physics.disorder as dis
 from pipeline.errors import ModelError
-from pipeline.model import exchange_matrices
+from pipeline.physics.bhz import exchange_matrices
 
 
 def _square_mesh(ni: int, nj: int, a: float = 1.0, i0: int = 0, j0: int = 0):
@@ -37,19 +37,19 @@ def _subset(mesh, index):
 # --------------------------------------------------------------------------- hashing
 
 
-def test_hash_uniform_is_uniform_on_unit_interval():
+def testhash_uniform_is_uniform_on_unit_interval():
     rng_free_i = np.arange(-50_000, 50_000)  # includes negative tags
-    u = dis._hash_uniform(12345, 0, 0, rng_free_i, 7)
+    u = dis.hash_uniform(12345, 0, 0, rng_free_i, 7)
     assert u.shape == (100_000,)
     assert u.min() >= 0.0 and u.max() < 1.0
     assert stats.kstest(u, stats.uniform.cdf).pvalue > 1e-3
     # Lattice-like key patterns (a 2-D block of small tags) are uniform too.
     ii, jj = np.meshgrid(np.arange(-150, 150), np.arange(-150, 150))
-    assert stats.kstest(dis._hash_uniform(0, 0, 0, ii, jj).ravel(), "uniform").pvalue > 1e-3
+    assert stats.kstest(dis.hash_uniform(0, 0, 0, ii, jj).ravel(), "uniform").pvalue > 1e-3
 
 
-def test_hash_normal_is_standard_normal():
-    z = dis._hash_normal(3, 1, 2, np.arange(100_000), -4)
+def testhash_normal_is_standard_normal():
+    z = dis.hash_normal(3, 1, 2, np.arange(100_000), -4)
     assert stats.kstest(z, "norm").pvalue > 1e-3
     assert abs(z.mean()) < 0.02 and abs(z.var() - 1.0) < 0.03
 
@@ -65,14 +65,14 @@ def test_hash_streams_are_uncorrelated(other):
     i = np.repeat(np.arange(-160, 160), 320)
     j = np.tile(np.arange(-160, 160), 320)
     base = dict(seed=1, stream=0, realisation=0, sub=0)
-    u0 = dis._hash_uniform(1, 0, 0, i, j)
+    u0 = dis.hash_uniform(1, 0, 0, i, j)
     key = {**base, **{k: v for k, v in other.items() if k in base}}
     ii = i + other.get("shift_i", 0)
     jj = j + other.get("shift_j", 0)
     if other.get("swap"):
         ii, jj = jj, ii
-    u1 = dis._hash_uniform(key["seed"], key["stream"], key["realisation"], ii, jj,
-                           sub=key["sub"])
+    u1 = dis.hash_uniform(key["seed"], key["stream"], key["realisation"], ii, jj,
+                          sub=key["sub"])
     # 1e5 pairs: the standard error of the correlation coefficient is 0.003.
     assert abs(np.corrcoef(u0, u1)[0, 1]) < 0.015
     differs = (i != j) if other.get("swap") else np.ones(len(i), bool)  # swap keeps i == j
@@ -81,8 +81,8 @@ def test_hash_streams_are_uncorrelated(other):
 
 def test_uniform_and_normal_of_same_key_are_independent():
     i = np.arange(100_000)
-    u = dis._hash_uniform(5, 0, 0, i, 0)
-    z = dis._hash_normal(5, 0, 0, i, 0)
+    u = dis.hash_uniform(5, 0, 0, i, 0)
+    z = dis.hash_normal(5, 0, 0, i, 0)
     assert abs(stats.spearmanr(u, z).statistic) < 0.015
 
 
@@ -90,21 +90,21 @@ def test_hash_depends_only_on_the_key_not_on_order_or_subset():
     rng = np.random.default_rng(0)
     i = rng.integers(-10**6, 10**6, 2000)
     j = rng.integers(-10**6, 10**6, 2000)
-    full = dis._hash_uniform(9, 3, 17, i, j)
+    full = dis.hash_uniform(9, 3, 17, i, j)
     perm = rng.permutation(2000)
-    np.testing.assert_array_equal(dis._hash_uniform(9, 3, 17, i[perm], j[perm]), full[perm])
-    np.testing.assert_array_equal(dis._hash_uniform(9, 3, 17, i[:10], j[:10]), full[:10])
-    assert dis._hash_uniform(9, 3, 17, int(i[5]), int(j[5])) == full[5]
+    np.testing.assert_array_equal(dis.hash_uniform(9, 3, 17, i[perm], j[perm]), full[perm])
+    np.testing.assert_array_equal(dis.hash_uniform(9, 3, 17, i[:10], j[:10]), full[:10])
+    assert dis.hash_uniform(9, 3, 17, int(i[5]), int(j[5])) == full[5]
     # Integer width of the tags does not matter.
     np.testing.assert_array_equal(
-        dis._hash_normal(9, 3, 17, i.astype(np.int32), j.astype(np.int32)),
-        dis._hash_normal(9, 3, 17, i, j),
+        dis.hash_normal(9, 3, 17, i.astype(np.int32), j.astype(np.int32)),
+        dis.hash_normal(9, 3, 17, i, j),
     )
 
 
 def test_hash_rejects_non_integer_tags():
     with pytest.raises(ModelError, match="integers"):
-        dis._hash_uniform(0, 0, 0, np.array([0.5]), np.array([1]))
+        dis.hash_uniform(0, 0, 0, np.array([0.5]), np.array([1]))
 
 
 # --------------------------------------------------------------------------- Anderson

@@ -3,39 +3,31 @@
 import numpy as np
 import pytest
 import xarray as xr
+from conftest import assert_same_samples, store_arrays
 
-from pipeline.config import parse_config
-from pipeline.engine import run_sweep, run_task
 from pipeline.errors import StoreError, TransportError
-from pipeline.store import SampleStore
-
-
-def _arrays(path):
-    ds = xr.open_zarr(str(path), consolidated=False)
-    return {k: ds[k].values for k in ("transmission", "modes", "measurements", "status")}
-
-
-def _assert_same(a, b):
-    for k in a:
-        np.testing.assert_array_equal(a[k], b[k], err_msg=k)
+from pipeline.sweep.config import parse_config
+from pipeline.sweep.driver import run_sweep
+from pipeline.sweep.store import SampleStatus, SampleStore
+from pipeline.sweep.tasks import solve_realisation
 
 
 def test_same_numbers_on_one_and_two_workers_and_after_resume(tmp_path, tiny_config_text, dask_clients):
     cfg = parse_config(tiny_config_text())
     one = run_sweep(cfg, client=dask_clients[1], store_path=tmp_path / "one.zarr", progress=False)
     two = run_sweep(cfg, client=dask_clients[2], store_path=tmp_path / "two.zarr", progress=False)
-    a, b = _arrays(one.path), _arrays(two.path)
-    _assert_same(a, b)
-    assert np.all(a["status"] == 1)
+    a, b = store_arrays(one.path), store_arrays(two.path)
+    assert_same_samples(a, b)
+    assert np.all(a["status"] == SampleStatus.DONE)
     assert np.all(np.isfinite(a["transmission"]))
     # partial run, then resume: only the missing tasks are computed, result identical
     part = run_sweep(cfg, client=dask_clients[2], store_path=tmp_path / "part.zarr",
                      progress=False, max_tasks=1)
     per_task = part.block * 3  # a block of realisations x 3 energies
     n_tasks = -(-3 // part.block) * 2  # blocks x geometries
-    assert part.counts()["done"] == per_task and len(part.pending_tasks()) == n_tasks - 1
+    assert part.counts()["done"] == per_task and len(part.pending_blocks()) == n_tasks - 1
     resumed = run_sweep(cfg, client=dask_clients[1], store_path=tmp_path / "part.zarr", progress=False)
-    _assert_same(_arrays(resumed.path), a)
+    assert_same_samples(store_arrays(resumed.path), a)
     sessions = resumed.group.attrs["sessions"]
     assert [s["tasks"] for s in sessions] == [1, n_tasks - 1]
 
@@ -47,7 +39,7 @@ def test_same_numbers_whatever_the_batching(tmp_path, tiny_config_text, dask_cli
     a = run_sweep(single, client=dask_clients[2], store_path=tmp_path / "a.zarr", progress=False)
     b = run_sweep(blocked, client=dask_clients[2], store_path=tmp_path / "b.zarr", progress=False)
     assert a.block == 1 and b.block == 4
-    _assert_same(_arrays(a.path), _arrays(b.path))
+    assert_same_samples(store_arrays(a.path), store_arrays(b.path))
     assert b.group.attrs["sessions"][-1]["tasks"] == 2  # one block per geometry
 
 
@@ -56,11 +48,11 @@ def test_disorder_is_fixed_per_realisation_across_energies(tiny_config_text):
     # shared energy: the sample does not depend on what else the task contains
     cfg_a = parse_config(tiny_config_text())
     cfg_b = parse_config(tiny_config_text(**{"energy = [-3.0, 1.0, 5.0]": "energy = [1.0]"}))
-    ra = run_task(cfg_a, (1, 0, 0))
-    rb = run_task(cfg_b, (1, 0, 0))
+    ra = solve_realisation(cfg_a, (1, 0, 0))
+    rb = solve_realisation(cfg_b, (1, 0, 0))
     np.testing.assert_array_equal(ra.transmission[0, 0, 1], rb.transmission[0, 0, 0])
     # and different realisations differ
-    rc = run_task(cfg_a, (2, 0, 0))
+    rc = solve_realisation(cfg_a, (2, 0, 0))
     assert not np.allclose(ra.transmission, rc.transmission)
 
 
@@ -88,26 +80,26 @@ def test_changed_config_is_refused_unless_fresh(tmp_path, tiny_config_text, dask
     path = tmp_path / "s.zarr"
     cfg = parse_config(tiny_config_text(realisations=1))
     run_sweep(cfg, client=dask_clients[1], store_path=path, progress=False)
-    before = _arrays(path)
+    before = store_arrays(path)
     other = parse_config(tiny_config_text(realisations=1, **{"width = 30.0": "width = 31.0"}))
     with pytest.raises(StoreError, match="different configuration"):
         run_sweep(other, client=dask_clients[1], store_path=path, progress=False)
-    _assert_same(_arrays(path), before)  # untouched
+    assert_same_samples(store_arrays(path), before)  # untouched
     run_sweep(other, client=dask_clients[1], store_path=path, progress=False, fresh=True)
     aside = [p for p in tmp_path.iterdir() if p.name.startswith("s.zarr.replaced-")]
     assert len(aside) == 1
-    _assert_same(_arrays(aside[0]), before)  # the old samples are kept, not deleted
+    assert_same_samples(store_arrays(aside[0]), before)  # the old samples are kept, not deleted
 
 
 def test_more_realisations_extend_the_store(tmp_path, tiny_config_text, dask_clients):
     path = tmp_path / "s.zarr"
     small = run_sweep(parse_config(tiny_config_text(realisations=2)), client=dask_clients[2],
                       store_path=path, progress=False)
-    first = _arrays(small.path)
+    first = store_arrays(small.path)
     big = run_sweep(parse_config(tiny_config_text(realisations=3)), client=dask_clients[2],
                     store_path=path, progress=False)
-    grown = _arrays(big.path)
-    assert grown["status"].shape[0] == 3 and np.all(grown["status"] == 1)
+    grown = store_arrays(big.path)
+    assert grown["status"].shape[0] == 3 and np.all(grown["status"] == SampleStatus.DONE)
     np.testing.assert_array_equal(grown["transmission"][:2], first["transmission"])
     assert big.group.attrs["sessions"][-1]["tasks"] == 2  # only the new realisation
 

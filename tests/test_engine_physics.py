@@ -4,8 +4,8 @@ import numpy as np
 import pytest
 import xarray as xr
 
-from pipeline.config import parse_config
-from pipeline.engine import run_sweep
+from pipeline.sweep.config import parse_config
+from pipeline.sweep.driver import run_sweep
 
 HBAR_TEMPLATE = """
 [run]
@@ -26,7 +26,7 @@ preset = "hgte-7.0nm"
 {extra}
 
 [measure]
-report = ["R14,23", "R14,14"]
+labels = ["R14,23", "R14,14"]
 """
 
 

@@ -6,14 +6,16 @@ import zipfile
 
 import pytest
 import xarray as xr
-
-from pipeline.config import parse_config
-from pipeline.engine import run_sweep
-from pipeline.export import ExportError, make_package, methods_text, verify_package
-from pipeline.figures import load_run
-
 from conftest import TINY_CONFIG  # noqa: E402
 from test_figures import summary_from_store  # noqa: E402  (tests/ is on sys.path)
+
+from pipeline.analysis.lstar import load_lstar, longest_ballistic_length
+from pipeline.errors import ExportError
+from pipeline.output.figures import load_run
+from pipeline.output.methods import methods_text
+from pipeline.output.package import make_package, verify_package
+from pipeline.sweep.config import parse_config
+from pipeline.sweep.driver import run_sweep
 
 # the shared tiny configuration (tests/conftest.py): Anderson disorder only, two energies
 CONFIG = (TINY_CONFIG.replace('name = "tiny"', 'name = "pkg"').replace("seed = 42", "seed = 1234")
@@ -21,11 +23,6 @@ CONFIG = (TINY_CONFIG.replace('name = "tiny"', 'name = "pkg"').replace("seed = 4
           .replace('[[disorder]]\nkind = "magnetic"\ninplane = 10.0\ndensity = 0.01\naligned = false\n\n', "")
           .replace("energy = [-3.0, 1.0, 5.0]", "energy = [-3.0, 1.0]")
           .replace("values = [60.0, 120.0]", "values = [60.0, 90.0]"))
-
-LSTAR = {"measurement": "G(L,R)", "lstar": 70.0, "interval": [62.0, 81.0], "tolerance": 0.05,
-         "flags": [], "lambda": 150.0, "lambda_err": 9.0, "xi": 400.0, "xi_err": 30.0,
-         "preferred": "incoherent"}
-
 
 @pytest.fixture(scope="module")
 def run_dir(tmp_path_factory, dask_clients):
@@ -41,14 +38,8 @@ def run_dir(tmp_path_factory, dask_clients):
 @pytest.fixture(scope="module")
 def package(run_dir):
     path, summary, _ = run_dir
-    results = [LSTAR]
-    try:
-        from pipeline.lstar import longest_ballistic_length
-    except ImportError:
-        pass
-    else:
-        results = [longest_ballistic_length(path / "samples.zarr", "G(L,R)",
-                                            point={"energy": 1.0}, bootstrap_resamples=200)]
+    results = [longest_ballistic_length(path / "samples.zarr", "G(L,R)",
+                                        point={"energy": 1.0}, bootstrap_resamples=200)]
     return make_package(path, summary=summary, lstar_results=results)
 
 
@@ -75,9 +66,9 @@ def test_package_is_complete(package, run_dir):
     assert prov["realisations"]["requested"] == 2
     assert prov["sessions"] and prov["sessions"][0]["kwant"]
     assert prov["environment_at_export"]["kwant_solver"] in ("mumps", "scipy")
-    lstar = json.loads((folder / "lstar.json").read_text())
-    entry = lstar[0].get("result", lstar[0])
-    assert entry["measurement"] == "G(L,R)" and entry["lstar"] > 0
+    (entry,) = load_lstar(folder / "lstar.json")  # the one L* schema of the project
+    assert entry.measurement == "G(L,R)" and entry.lstar > 0
+    assert (folder / "lstar.txt").read_text().startswith("L* of G(L,R)")
     readme = (folder / "README.md").read_text()
     assert "model estimates" in readme and "xr.open_dataset" in readme
     for name in files:

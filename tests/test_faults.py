@@ -11,36 +11,24 @@ import time
 
 import numpy as np
 import pytest
-import xarray as xr
-import zarr
+from conftest import assert_same_samples, done_samples, store_arrays, tiny_config
 
-from pipeline import engine
-from pipeline.aggregate import AggregateError, summarize
-from pipeline.config import parse_config
+import pipeline.sweep.tasks as tasks
+from pipeline.analysis.summary import AggregateError, summarize
 from pipeline.errors import StoreError
-from pipeline.store import SampleStore
-
-
-def _arrays(path):
-    ds = xr.open_zarr(str(path), consolidated=False)
-    return {k: ds[k].values for k in ("transmission", "modes", "measurements", "status")}
-
-
-def _assert_same(a, b):
-    for k in a:
-        np.testing.assert_array_equal(a[k], b[k], err_msg=k)
+from pipeline.sweep import clusters, driver
+from pipeline.sweep.config import parse_config
+from pipeline.sweep.store import SampleStatus, SampleStore
 
 
 @pytest.fixture(scope="module")
 def reference(tmp_path_factory, dask_clients):
     """The uninterrupted run every faulty run must end up equal to."""
-    from conftest import TINY_CONFIG
-
     d = tmp_path_factory.mktemp("ref")
-    text = TINY_CONFIG.format(realisations=6, directory=str(d))
-    store = engine.run_sweep(parse_config(text), client=dask_clients[2], store_path=d / "ref.zarr",
+    text = tiny_config(d, realisations=6)
+    store = driver.run_sweep(parse_config(text), client=dask_clients[2], store_path=d / "ref.zarr",
                              progress=False)
-    return text, _arrays(store.path)
+    return text, store_arrays(store.path)
 
 
 def test_failed_solve_is_recorded_and_the_sweep_goes_on(tmp_path, reference, monkeypatch):
@@ -48,20 +36,19 @@ def test_failed_solve_is_recorded_and_the_sweep_goes_on(tmp_path, reference, mon
 
     text, _ = reference
     cfg = parse_config(text)
-    import pipeline.transport as transport
-
-    original = transport.transmission_matrix
+    original = tasks.transmission_matrix
 
     def flaky(dsys, energy, params, **kw):
         if energy == 1.0:
             raise RuntimeError("injected solver failure")
         return original(dsys, energy, params, **kw)
 
-    monkeypatch.setattr(transport, "transmission_matrix", flaky)
+    # the solver as the sweep's tasks call it (in-process workers see the patch)
+    monkeypatch.setattr(tasks, "transmission_matrix", flaky)
     with Client(processes=False, n_workers=1, threads_per_worker=1, dashboard_address=":0") as client:
-        store = engine.run_sweep(cfg, client=client, store_path=tmp_path / "s.zarr", progress=False)
+        store = driver.run_sweep(cfg, client=client, store_path=tmp_path / "s.zarr", progress=False)
     st = store.status()
-    assert np.all(st[..., 1] == 2) and np.all(st[..., [0, 2]] == 1)
+    assert np.all(st[..., 1] == SampleStatus.FAILED) and np.all(st[..., [0, 2]] == SampleStatus.DONE)
     failures = store.group.attrs["failures"]
     assert len(failures) == st[..., 1].size
     assert all("injected solver failure" in f["reason"] for f in failures)
@@ -83,21 +70,21 @@ def test_full_disk_stops_cleanly_and_resume_completes(tmp_path, reference, dask_
 
     monkeypatch.setattr(SampleStore, "write_block", failing)
     with pytest.raises(StoreError, match="No space left on device") as err:
-        engine.run_sweep(cfg, client=dask_clients[2], store_path=path, progress=False)
+        driver.run_sweep(cfg, client=dask_clients[2], store_path=path, progress=False)
     assert str(path) in str(err.value)
     monkeypatch.setattr(SampleStore, "write_block", original)
     store = SampleStore.open(path)  # still readable
     per_task = store.block * 3  # realisations per task x energies
-    assert (store.status() == 1).sum() == 3 * per_task  # the three tasks written before
-    engine.run_sweep(cfg, client=dask_clients[2], store_path=path, progress=False)
-    _assert_same(_arrays(path), ref)
+    assert store.counts()["done"] == 3 * per_task  # the three tasks written before
+    driver.run_sweep(cfg, client=dask_clients[2], store_path=path, progress=False)
+    assert_same_samples(store_arrays(path), ref)
 
 
 def test_damaged_chunk_is_detected_never_averaged_and_recomputed(tmp_path, reference, dask_clients):
     text, ref = reference
     cfg = parse_config(text)
     path = tmp_path / "s.zarr"
-    store = engine.run_sweep(cfg, client=dask_clients[2], store_path=path, progress=False)
+    store = driver.run_sweep(cfg, client=dask_clients[2], store_path=path, progress=False)
     b = store.block
     r0 = (4 // b) * b  # the block holding realisation 4
     chunk = path / "transmission" / "c" / str(4 // b) / "1" / "0" / "0" / "0" / "0" / "0" / "0"
@@ -108,17 +95,17 @@ def test_damaged_chunk_is_detected_never_averaged_and_recomputed(tmp_path, refer
     assert SampleStore.open(path).verify()[0][:2] == ("transmission", (r0, 1, 0))
     with pytest.raises(AggregateError, match=rf"damaged chunk.*transmission task \({r0}, 1, 0\)"):
         summarize(path)
-    store = engine.run_sweep(cfg, client=dask_clients[2], store_path=path, progress=False)
+    store = driver.run_sweep(cfg, client=dask_clients[2], store_path=path, progress=False)
     assert store.group.attrs["repairs"][0]["task"] == [r0, 1, 0]
     assert store.group.attrs["sessions"][-1]["tasks"] == 1  # only the damaged task redone
-    _assert_same(_arrays(path), ref)
+    assert_same_samples(store_arrays(path), ref)
 
 
 @pytest.mark.slow
 def test_worker_killed_mid_run_store_ends_complete_and_identical(tmp_path, reference):
     text, ref = reference
     cfg = parse_config(text)
-    client = engine.local_client(2)
+    client = clusters.local_client(2)
     try:
         pids = list(client.run(os.getpid).values())
         path = tmp_path / "s.zarr"
@@ -126,7 +113,7 @@ def test_worker_killed_mid_run_store_ends_complete_and_identical(tmp_path, refer
 
         def run():
             try:
-                outcome["store"] = engine.run_sweep(cfg, client=client, store_path=path,
+                outcome["store"] = driver.run_sweep(cfg, client=client, store_path=path,
                                                     progress=False, max_in_flight=2)
             except Exception as exc:  # reported below
                 outcome["error"] = exc
@@ -135,16 +122,13 @@ def test_worker_killed_mid_run_store_ends_complete_and_identical(tmp_path, refer
         thread.start()
         deadline = time.monotonic() + 60
         while time.monotonic() < deadline:
-            try:
-                if (zarr.open_group(str(path), mode="r")["status"][...] == 1).sum() >= 3:
-                    break
-            except Exception:
-                pass
+            if done_samples(path) >= 3:
+                break
             time.sleep(0.02)
         os.kill(pids[0], signal.SIGKILL)  # the nanny restarts it; Dask reschedules its tasks
         thread.join(timeout=180)
         assert "error" not in outcome, outcome.get("error")
-        _assert_same(_arrays(path), ref)
+        assert_same_samples(store_arrays(path), ref)
     finally:
         cluster = client.cluster
         client.close()
@@ -166,10 +150,10 @@ def test_repeated_sigkill_at_random_points_then_resume(tmp_path, reference):
         proc = subprocess.Popen(cmd, start_new_session=True, stdout=subprocess.DEVNULL,
                                 stderr=subprocess.DEVNULL)
         try:
-            before = _done(path)
+            before = done_samples(path)
             target = min(total - 1, before + rng.randint(1, 3) * 3)
             deadline = time.monotonic() + 60
-            while _done(path) < target and proc.poll() is None and time.monotonic() < deadline:
+            while done_samples(path) < target and proc.poll() is None and time.monotonic() < deadline:
                 time.sleep(0.01)
             time.sleep(rng.uniform(0, 0.3))  # kill at a random moment, maybe mid-write
         finally:
@@ -180,12 +164,5 @@ def test_repeated_sigkill_at_random_points_then_resume(tmp_path, reference):
     assert kills >= 2, "the runs finished before they could be killed"
     out = subprocess.run(cmd, capture_output=True, text=True, timeout=300)
     assert out.returncode == 0, out.stderr
-    _assert_same(_arrays(path), ref)
+    assert_same_samples(store_arrays(path), ref)
     assert not SampleStore.open(path).verify()
-
-
-def _done(path) -> int:
-    try:
-        return int((zarr.open_group(str(path), mode="r")["status"][...] == 1).sum())
-    except Exception:
-        return 0

@@ -1,6 +1,7 @@
 """Figures: every file written, reference lines from the summary, current-map physics."""
 
 import csv
+import json
 import math
 from pathlib import Path
 
@@ -8,25 +9,24 @@ import numpy as np
 import pytest
 import xarray as xr
 
-from pipeline.config import parse_config
-from pipeline.engine import quantised_values, run_sweep
+# the shared tiny configuration (tests/conftest.py) under another name and seed
+from conftest import TINY_CONFIG  # noqa: E402  (tests/ is on sys.path)
+
+from pipeline.analysis.lstar_results import LStarResult
 from pipeline.errors import HelisweepError
-from pipeline.figures import (
+from pipeline.output.figures import (
     RunData,
-    _choose_lstar,
-    _lstar_by_measurement,
-    _figure_distribution,
-    _figure_vs_axis,
-    _figure_vs_length,
-    _lstar_view,
-    current_map,
+    figure_distribution,
+    figure_vs_axis,
+    figure_vs_length,
     load_run,
     make_figures,
     measurement_slug,
 )
-
-# the shared tiny configuration (tests/conftest.py) under another name and seed
-from conftest import TINY_CONFIG  # noqa: E402  (tests/ is on sys.path)
+from pipeline.sweep.config import parse_config
+from pipeline.sweep.driver import run_sweep
+from pipeline.sweep.probe import current_map
+from pipeline.sweep.runmodel import quantised_values
 
 RUN_CONFIG = (TINY_CONFIG.replace('name = "tiny"', 'name = "figs"').replace("seed = 42", "seed = 7")
               .replace("{realisations}", "3"))
@@ -55,19 +55,19 @@ doping = {doping}
 energy = {energy}
 
 [measure]
-report = ["G(L,R)"]
+labels = ["G(L,R)"]
 """
 
 
 def summary_from_store(store_path, cfg):
-    """The run's summary: pipeline.aggregate when it exists, else plain statistics here."""
+    """The run's summary: pipeline.analysis.summary when it exists, else plain statistics here."""
     try:
-        from pipeline.aggregate import summarize
+        from pipeline.analysis.summary import summarize
     except ImportError:
         summarize = None
     if summarize is not None:
         return summarize(store_path, bootstrap_resamples=400)
-    from pipeline.landauer import parse_measurement
+    from pipeline.transport.landauer import parse_measurement
 
     s = xr.open_zarr(str(store_path), consolidated=False)
     m = s.measurements.where(s.status == 1)
@@ -154,7 +154,7 @@ def test_quantised_line_is_the_summary_value(real_run, figure_files):
         q = float(summary["quantised"].sel(measurement=label))
         # the summary's ideal value is the transport code's own: 2 e^2/h, 1/2 h/e^2 here
         assert q == pytest.approx(ideal[label], rel=1e-12)
-        plot = _figure_vs_axis(real_run, label, "energy", "x")
+        plot = figure_vs_axis(real_run, label, "energy", "x")
         lines = [ln for ax in plot.figure.axes for ln in ax.get_lines()
                  if ln.get_gid() == "quantised"]
         assert len(lines) == 1
@@ -167,7 +167,7 @@ def test_quantised_line_is_the_summary_value(real_run, figure_files):
 
 
 def test_distribution_uses_every_done_sample(real_run):
-    plot = _figure_distribution(real_run, "G(L,R)", "G", None)
+    plot = figure_distribution(real_run, "G(L,R)", "G", None)
     samples = real_run.samples
     n_real = samples.sizes["realisation"]
     assert len(plot.rows) == 2 * n_real  # first and last length, every realisation
@@ -221,7 +221,7 @@ def test_synthetic_summary_line_figures_follow_the_spec():
     run = _synthetic_run(_synthetic(gates=(-1.0, 0.0, 1.0)))
     for label, q in (("G14", 2.0), ("R14,23", 0.25)):
         for x_dim in ("energy", "gate_voltage"):
-            plot = _figure_vs_axis(run, label, x_dim, measurement_slug(label))
+            plot = figure_vs_axis(run, label, x_dim)
             ax = plot.figure.axes[0]
             (qline,) = [ln for ln in ax.get_lines() if ln.get_gid() == "quantised"]
             assert set(qline.get_ydata()) == {q}
@@ -232,12 +232,33 @@ def test_synthetic_summary_line_figures_follow_the_spec():
         assert plot.stem == f"fig-vs-gate-{measurement_slug(label)}"
 
 
+def _fit_dict(form, value, error, to_lstar):
+    return {"form": form, "parameter": "lambda" if form == "incoherent" else "xi",
+            "value": value, "error": error, "chi2_reduced": 1.0, "dof": 1, "n_points": 2,
+            "lstar": value * to_lstar, "lstar_error": error * to_lstar, "tolerance": 0.05,
+            "ok": True, "message": ""}
+
+
+def _stored_lstar(measurement, lstar, low, high, lam, lam_err, xi, xi_err, preferred):
+    """An L* result as a reader of lstar.json gets it (two lengths, off the summary's)."""
+    return LStarResult.from_dict({
+        "measurement": measurement, "kind": "G", "quantised": 2.0, "tolerance": 0.05,
+        "point": {}, "length_parameter": "length", "lengths": [10.0, 60.0], "n": [50, 50],
+        "t_mean": [0.99, 0.9], "t_sem": [0.01, 0.01], "lnt_mean": [-0.01, -0.1],
+        "lnt_sem": [0.01, 0.01], "lnt_n": [50, 50], "value_mean": [1.98, 1.8],
+        "n_nonpositive": 0, "lstar": lstar, "lstar_kind": "interpolated", "lstar_ci_low": low,
+        "lstar_ci_high": high, "confidence": 0.95, "bootstrap_resamples": 200,
+        "bootstrap_seed": 0, "bootstrap_censored_fraction": 0.0,
+        "incoherent": _fit_dict("incoherent", lam, lam_err, 0.05 / 0.95),
+        "coherent": _fit_dict("coherent", xi, xi_err, -math.log(0.95)),
+        "preferred": preferred, "notes": [], "method": "length sweep"})
+
+
 def test_length_figure_draws_lstar_tolerance_and_fits():
     run = _synthetic_run(_synthetic())
-    lstar = {"measurement": "G14", "lstar": 15.8, "interval": [10.0, 22.0], "tolerance": 0.05,
-             "flags": [], "lambda": 300.0, "lambda_err": 12.0, "xi": 900.0, "xi_err": 50.0,
-             "preferred": "incoherent"}
-    plot = _figure_vs_length(run, "G14", "G14", None, _lstar_view(lstar))
+    lstar = _stored_lstar("G14", 15.8, 10.0, 22.0, 300.0, 12.0, 900.0, 50.0, "incoherent")
+    assert lstar.flags == ()
+    plot = figure_vs_length(run, "G14", "G14", None, lstar)
     ax, axl = plot.figure.axes[:2]
     (ls,) = [ln for ln in ax.get_lines() if ln.get_gid() == "lstar"]
     assert set(ls.get_xdata()) == {15.8}
@@ -254,8 +275,10 @@ def test_length_figure_draws_lstar_tolerance_and_fits():
         assert row[col["incoherent_fit [1]"]] == pytest.approx(1 / (1 + L / 300.0))
         assert row[col["tolerance_low [e^2/h]"]] == pytest.approx(1.9)
     assert plot.extra["lstar"]["low_nm"] == 10.0 and plot.extra["lstar"]["high_nm"] == 22.0
+    assert plot.extra["lstar"]["result"] == lstar.to_dict()
+    assert plot.extra["normalised_from"] == "summary"  # the result's lengths are not the run's
     # a resistance is normalised as R_ideal / R, which falls below 1 in the same way
-    plot_r = _figure_vs_length(run, "R14,23", "R", None, None)
+    plot_r = figure_vs_length(run, "R14,23", "R", None, None)
     k = plot_r.columns.index("normalised [1]")
     assert [r[k] for r in plot_r.rows] == pytest.approx([1 / (1 + L / 300.0)
                                                          for L in (100, 200, 400, 800)])
@@ -264,9 +287,9 @@ def test_length_figure_draws_lstar_tolerance_and_fits():
 def test_points_off_the_sweep_axes_are_refused():
     run = _synthetic_run(_synthetic())
     with pytest.raises(HelisweepError, match="not on the run's sweep axis"):
-        _figure_vs_axis(run, "G14", "energy", "G14", select={"geometry": 150.0})
+        figure_vs_axis(run, "G14", "energy", select={"geometry": 150.0})
     with pytest.raises(HelisweepError, match="unknown sweep axis"):
-        _figure_vs_axis(run, "G14", "energy", "G14", select={"temperature": 1.0})
+        figure_vs_axis(run, "G14", "energy", select={"temperature": 1.0})
 
 
 # --------------------------------------------------------------------------- current map physics
@@ -279,15 +302,15 @@ def test_current_runs_along_the_edges_in_the_gap_and_through_the_bulk_above_it()
     # Helical edge states carry all current inside the bulk gap (-10, 10) meV of this well;
     # in the conduction band bulk states carry most of it. The gap edges are those of the
     # material preset (Koenig et al., J. Phys. Soc. Jpn. 77, 031007 (2008), Table I).
-    from pipeline.engine import system_for
-    from pipeline.model import continuum_bulk_gap
-    from pipeline.transport import transmission_matrix
+    from pipeline.physics.bhz import continuum_bulk_gap
+    from pipeline.sweep.tasks import system_for
+    from pipeline.transport.solver import transmission_matrix
 
     cfg = _clean(2.0, 25.0)
     _, top, bottom = continuum_bulk_gap(cfg.material.parameters())
     assert top < 2.0 < bottom < 40.0
-    gap = current_map(cfg)
-    band = current_map(_clean(40.0, 25.0))
+    gap = current_map(cfg).density
+    band = current_map(_clean(40.0, 25.0)).density
     assert gap.edge_zone == pytest.approx(2 / 0.018697, rel=1e-3)  # 2 x 53.5 nm
     assert gap.edge_fraction > 0.9
     assert band.edge_fraction < 0.75
@@ -329,39 +352,40 @@ def test_current_map_refuses_a_realisation_outside_the_run(real_run):
         current_map(real_run.config, {"energy": 2.5})
 
 
-def test_lstar_view_reads_nested_results():
-    v = _lstar_view({"measurement": "G14", "direct": {"value": 120.0, "low": 90.0, "high": 150.0},
-                     "fit": {"lambda": 300.0, "lambda_err": 5.0, "xi": 40.0, "xi_err": 1.0},
-                     "flags": {"censored": False, "extrapolated": True}})
-    assert (v.value, v.low, v.high) == (120.0, 90.0, 150.0)
-    assert (v.lam, v.lam_err, v.xi, v.xi_err) == (300.0, 5.0, 40.0, 1.0)
-    assert v.flags == ("extrapolated",)
-    assert math.isclose(v.tolerance, 0.05)
-
-
-def test_length_figure_with_a_real_lstar_result(real_run):
-    lstar = pytest.importorskip("pipeline.lstar")
+def test_length_figure_with_a_real_lstar_result(real_run, tmp_path):
+    lstar = pytest.importorskip("pipeline.analysis.lstar")
     result = lstar.longest_ballistic_length(real_run.store_path, "G(L,R)",
                                             point={"energy": 1.0}, bootstrap_resamples=200)
-    view = _lstar_view(result)
-    assert view.value == result.lstar and view.kind == result.lstar_kind
-    assert view.lam == result.incoherent.value and view.xi == result.coherent.value
-    plot = _figure_vs_length(real_run, "G(L,R)", "G", None, view)
+    plot = figure_vs_length(real_run, "G(L,R)", "G", None, result)
     (ls,) = [ln for ln in plot.figure.axes[0].get_lines() if ln.get_gid() == "lstar"]
     assert set(ls.get_xdata()) == {result.lstar}
+    facts = plot.extra["lstar"]
+    assert facts["value_nm"] == result.lstar and facts["kind"] == result.lstar_kind
+    assert facts["lambda_nm"] == result.incoherent.value and facts["xi_nm"] == result.coherent.value
     k = plot.columns.index("normalised [1]")
     assert [r[k] for r in plot.rows] == pytest.approx(list(result.t_mean))
     k = plot.columns.index("normalised_typical [1]")
     assert [r[k] for r in plot.rows] == pytest.approx(np.exp(result.lnt_mean).tolist())
-    # a table of all points: the figure picks the result at its own point (middle energy)
+    # a result read back from lstar.json draws the same figure
+    path = lstar.save_lstar(tmp_path / "lstar.json", result)
+    (back,) = lstar.load_lstar(path)
+    again = figure_vs_length(real_run, "G(L,R)", "G", None, back)
+    np.testing.assert_array_equal(np.array(again.rows, dtype=float), np.array(plot.rows, dtype=float))
+    assert again.extra["lstar"]["result"] == facts["result"] == result.to_dict()
+    # a table of all points: the figures pick the result at their own point
     table = lstar.longest_ballistic_length(real_run.store_path, "G(L,R)", bootstrap_resamples=0)
-    views = _lstar_by_measurement([table], ["G(L,R)", "R(L,R;L,R)"])
-    assert len(views["G(L,R)"]) == 3 and "R(L,R;L,R)" not in views
-    chosen = _choose_lstar(real_run.summary, views["G(L,R)"], None)
-    assert chosen.point["energy"] == 1.0
-    chosen = _choose_lstar(real_run.summary, views["G(L,R)"], {"energy": 5.0})
-    assert chosen.point["energy"] == 5.0
-    plot = _figure_vs_length(real_run, "G(L,R)", "G", {"energy": 5.0}, chosen)
-    assert plot.extra["normalised_from"] == "L* analysis"
-    k = plot.columns.index("energy [meV]")
-    assert {r[k] for r in plot.rows} == {5.0}
+    assert len(table.results) == 3
+    out = tmp_path / "figs"
+    make_figures(real_run, out, lstar={"G(L,R)": table}, select={"energy": 5.0})
+    facts = json.loads((out / "fig-vs-length-G-L-R.json").read_text())
+    assert facts["lstar"]["result"]["point"]["energy"] == 5.0
+    assert facts["normalised_from"] == "L* analysis"
+    header, rows = _read_csv(out / "fig-vs-length-G-L-R.csv")
+    k = header.index("energy [meV]")
+    assert {float(r[k]) for r in rows} == {5.0}
+    # the R figure has no L* result: drawn from the summary alone
+    facts = json.loads((out / "fig-vs-length-R-L-R-L-R.json").read_text())
+    assert "lstar" not in facts and facts["normalised_from"] == "summary"
+    with pytest.raises(HelisweepError, match="'G14', which the run does not report"):
+        make_figures(real_run, out, lstar=_stored_lstar("G14", 1.0, 0.5, 2.0, 1.0, 0.1, 1.0,
+                                                        0.1, "comparable"))

@@ -12,25 +12,11 @@ import pytest
 import shapely
 from shapely.geometry import LineString, Point, Polygon, box
 
+from pipeline.device.drawing import plot_device
+from pipeline.device.outline import Contact, Device, Gate, validate_device
+from pipeline.device.readers import SUFFIXES, device_from_dict, device_to_dict, load_device, save_geojson
+from pipeline.device.templates import TEMPLATES, h_bar, hall_bar, two_terminal_strip
 from pipeline.errors import GeometryError
-from pipeline.geometry import (
-    TEMPLATES,
-    Contact,
-    Device,
-    Gate,
-    h_bar,
-    hall_bar,
-    plot_device,
-    two_terminal_strip,
-    validate_device,
-)
-from pipeline.geometry_io import (
-    SUFFIXES,
-    device_from_dict,
-    device_to_dict,
-    load_device,
-    save_geojson,
-)
 
 A = 5.0  # lattice constant (nm) used throughout
 ROOT = Path(__file__).resolve().parent.parent

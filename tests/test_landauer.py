@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 import scipy.constants as sc
 
-from pipeline import landauer
+import pipeline.transport.landauer as landauer
 from pipeline.constants import H_OVER_E2_OHM
 from pipeline.errors import TransportError
 
@@ -21,8 +21,9 @@ def helical_ring(n: int) -> np.ndarray:
     return T
 
 
-def ring_resistance_closed_form(n: int, s: int, d: int, k: int, l: int) -> float:
-    """R_{sd,kl} (h/e^2) of the ring, derived independently of the LB matrix algebra.
+def ring_resistance_closed_form(n: int, s: int, d: int, plus: int, minus: int) -> float:
+    """R_{sd,kl} (h/e^2) of the ring, k = plus and l = minus, derived independently of the LB
+    matrix algebra.
 
     Every floating contact equilibrates the two channels that meet it, so each edge segment
     between neighbouring contacts acts as a resistor of h/e^2 (one channel each way), and
@@ -49,7 +50,7 @@ def ring_resistance_closed_form(n: int, s: int, d: int, k: int, l: int) -> float
     backward = arc(d, s)  # d -> s going +1 is the -1 arc from s
     for steps_to_d, c in enumerate(backward[:-1], start=1):
         volt[c] = steps_to_d * i2
-    return volt[k] - volt[l]
+    return volt[plus] - volt[minus]
 
 
 def test_roth_four_terminal_values():
@@ -64,12 +65,12 @@ def test_roth_four_terminal_values():
 @pytest.mark.parametrize("n", [2, 3, 4, 5, 6, 8])
 def test_ring_general_result(n):
     T = helical_ring(n)
-    for s, d, k, l in itertools.product(range(n), repeat=4):
+    for s, d, plus, minus in itertools.product(range(n), repeat=4):
         if s == d:
             continue
-        expected = ring_resistance_closed_form(n, s, d, k, l)
-        got = landauer.four_terminal_resistance(T, s, d, k, l)
-        assert got == pytest.approx(expected, abs=1e-10), (n, s, d, k, l)
+        expected = ring_resistance_closed_form(n, s, d, plus, minus)
+        got = landauer.four_terminal_resistance(T, s, d, plus, minus)
+        assert got == pytest.approx(expected, abs=1e-10), (n, s, d, plus, minus)
 
 
 def test_two_terminal_ring_formula():

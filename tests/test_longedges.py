@@ -1,15 +1,17 @@
 """Concatenated edges wired through the config, the run directory, L* and the figures."""
 
-import json
 import warnings
 
 import pytest
 import xarray as xr
 
-from pipeline import concat
-from pipeline.config import parse_config
+from pipeline.analysis.lstar import load_lstar
+from pipeline.analysis.lstar_results import concatenated_method
 from pipeline.errors import ConfigError, StoreError
-from pipeline.longedges import run_concatenation
+from pipeline.longedges import pools
+from pipeline.longedges.run import run_concatenation
+from pipeline.output.longedge_figures import plot_concatenated
+from pipeline.sweep.config import parse_config
 
 CONFIG = """
 [run]
@@ -38,7 +40,7 @@ aligned = false
 energy = 1.0
 
 [measure]
-report = ["G(L,R)"]
+labels = ["G(L,R)"]
 
 [concatenation]
 segment_length = 400.0
@@ -63,11 +65,13 @@ def test_long_edges_end_to_end_and_resume(tmp_path, monkeypatch):
     # Source: the ideal helical edge conducts 2 e^2/h (Koenig et al., Science 318, 766 (2007));
     # spin-flip disorder can only lower it, more so for longer edges
     assert (mean <= 2.0 + 1e-9).all() and mean[-1] < mean[0]
-    rows = json.loads(out["lstar"].read_text())
-    assert {r["mode"] for r in rows} == {"coherent", "incoherent"}
-    assert all(f.exists() and f.stat().st_size > 1000 for f in out["figures"] if f.suffix != ".csv")
+    methods = {r.method for r in load_lstar(out["lstar"])}
+    assert methods == {concatenated_method("coherent"), concatenated_method("incoherent")}
+    figures = plot_concatenated(out["dataset"], out["results"], tmp_path / "figures")
+    assert {f.suffix for f in figures} == {".pdf", ".png", ".csv"}
+    assert all(f.exists() and f.stat().st_size > 1000 for f in figures if f.suffix != ".csv")
     # a rerun reuses the stored pools: no segment is solved again
-    monkeypatch.setattr(concat, "segment_smatrices",
+    monkeypatch.setattr(pools, "segment_smatrices",
                         lambda *a, **k: (_ for _ in ()).throw(AssertionError("recomputed")))
     again = run_concatenation(cfg, tmp_path, progress=False)
     with xr.open_dataset(again["netcdf"]) as f:

@@ -1,5 +1,6 @@
 """L*: recovery of known decay lengths, direct crossing, bounds, normalisation, selection."""
 
+import dataclasses
 import json
 import math
 
@@ -7,16 +8,20 @@ import numpy as np
 import pytest
 import xarray as xr
 
-from pipeline.lstar import (
+from pipeline.analysis.lstar import (
     LStarError,
     LStarResult,
     LStarTable,
     crossing_length,
     fit_coherent,
     fit_incoherent,
+    load_lstar,
     longest_ballistic_length,
+    lstar_results,
     normalised_transmission,
+    save_lstar,
 )
+from pipeline.analysis.lstar_results import LSTAR_SCHEMA, concatenated_method, lstar_document
 
 LENGTHS = np.linspace(100.0, 3000.0, 15)
 
@@ -148,7 +153,7 @@ def test_never_crossing_and_already_failing_are_flagged_as_bounds():
                                    bootstrap_resamples=200)
     assert res.lstar_kind == "lower_bound" and res.lstar == 400.0
     assert "L* >= 400" in res.text() and "lower_bound" in res.flags
-    assert res.as_dict()["flags"][0] == "lower_bound"
+    assert res.to_dict()["flags"][0] == "lower_bound"
     broken = 2.0 * (0.5 + 0.01 * rng.random((20, 3)))
     res = longest_ballistic_length(samples_dataset(broken, L), "G(L,R)", quantised=2.0, point={},
                                    bootstrap_resamples=200)
@@ -197,16 +202,56 @@ def test_points_table_status_and_json():
     assert isinstance(by_value, LStarResult) and by_value == by_index == table.results[1]
     assert by_value.point == (("energy", 1.0),)
     assert table.results[0].incoherent.value < by_value.incoherent.value
-    text = json.dumps(table.as_dict(), allow_nan=False)  # JSON-safe (NaN -> null)
-    row = json.loads(text)["rows"][1]
-    assert row["point"] == {"energy": 1.0} and row["lambda_nm"] == by_value.incoherent.value
-    assert row["lstar_interval"] == [by_value.lstar_ci_low, by_value.lstar_ci_high]
-    assert "model estimate" in text and "model estimate" in by_value.text()
+    text = json.dumps(lstar_document(table), allow_nan=False)  # JSON-safe (NaN -> null)
+    doc = json.loads(text)
+    row = doc["results"][1]
+    assert row["point"] == {"energy": 1.0} and row["incoherent"]["value"] == by_value.incoherent.value
+    assert [row["lstar_ci_low"], row["lstar_ci_high"]] == [by_value.lstar_ci_low, by_value.lstar_ci_high]
+    assert row["method"] == "length sweep" and doc["schema"] == LSTAR_SCHEMA
+    assert "model estimate" in doc["note"] and "model estimate" in by_value.text()
     assert list(table.to_dataframe()["energy"]) == [-1.0, 1.0]
     with pytest.raises(LStarError, match=r"'energy' has 2 values"):
         longest_ballistic_length(ds, "G(L,R)", point={}, quantised=2.0)
     with pytest.raises(LStarError, match=r"0.5 is not a swept value"):
         longest_ballistic_length(ds, "G(L,R)", point={"energy": 0.5}, quantised=2.0)
+
+
+def test_results_round_trip_exactly_through_plain_data_and_the_lstar_file(tmp_path):
+    rng = np.random.default_rng(108)
+    L = np.array([100.0, 300.0, 600.0, 1000.0])
+    t = np.stack([incoherent_samples(rng, lam, L, n=40) for lam in (500.0, 5000.0)], axis=-1)
+    ds = samples_dataset(2.0 * t, L, energies=[-1.0, 1.0])
+    table = longest_ballistic_length(ds, "G(L,R)", quantised=2.0, bootstrap_resamples=200)
+    for r in table.results:
+        d = r.to_dict()
+        assert LStarResult.from_dict(d) == r  # every field, exactly
+        assert LStarResult.from_dict(json.loads(json.dumps(d, allow_nan=False))) == r
+        assert LStarResult.from_dict(d).to_dict() == d
+    assert LStarTable.from_dict(table.to_dict()) == table
+    # no bootstrap: the interval is NaN, written as null and read back as NaN
+    bare = longest_ballistic_length(ds, "G(L,R)", point={"energy": 1.0}, quantised=2.0,
+                                    bootstrap_resamples=0)
+    d = bare.to_dict()
+    assert d["lstar_ci_low"] is None and math.isnan(LStarResult.from_dict(d).lstar_ci_low)
+    assert LStarResult.from_dict(d).to_dict() == d
+    # one file format for length sweeps and concatenated edges, one reader
+    concatenated = dataclasses.replace(bare, method=concatenated_method("coherent"),
+                                       notes=bare.notes + ("sequences share segments",))
+    path = save_lstar(tmp_path / "lstar.json", [table, concatenated])
+    doc = json.loads(path.read_text())
+    assert doc["schema"] == LSTAR_SCHEMA and "model estimate" in doc["note"]
+    loaded = load_lstar(path)
+    assert loaded[:2] == list(table.results)
+    assert loaded[2].method == "concatenated, coherent" and loaded[2].to_dict() == concatenated.to_dict()
+    assert [r.to_dict() for r in lstar_results(doc)] == [r.to_dict() for r in loaded]
+    assert lstar_results({"G(L,R)": table.to_dict()}) == list(table.results)
+    with pytest.raises(LStarError, match=r"lacks \['kind'"):
+        LStarResult.from_dict({"measurement": "G(L,R)", "lstar": 1.0, "lengths": [1.0]})
+    with pytest.raises(LStarError, match="'G14'"):
+        concatenated_method("G14")
+    path.write_text("[]")
+    with pytest.raises(LStarError, match="not an L\\* document"):
+        load_lstar(path)
 
 
 def test_refuses_non_length_sweeps_and_unknown_measurements():
@@ -227,8 +272,8 @@ def test_refuses_non_length_sweeps_and_unknown_measurements():
 def real_store(tmp_path_factory, dask_clients):
     from conftest import TINY_CONFIG
 
-    from pipeline.config import parse_config
-    from pipeline.engine import run_sweep
+    from pipeline.sweep.config import parse_config
+    from pipeline.sweep.driver import run_sweep
 
     root = tmp_path_factory.mktemp("lstar")
     cfg = parse_config(TINY_CONFIG.format(realisations=3, directory=str(root / "run")))

@@ -4,10 +4,11 @@ import numpy as np
 import pytest
 import shapely
 
+from pipeline.device.outline import Contact, Device
+from pipeline.device.templates import h_bar, hall_bar, two_terminal_strip
 from pipeline.errors import GeometryError, ModelError
-from pipeline.geometry import Contact, Device, h_bar, hall_bar, two_terminal_strip
-from pipeline.materials import PRESETS
-from pipeline.mesh import build_system, mesh_device
+from pipeline.physics.materials import PRESETS
+from pipeline.system.mesh import build_system, mesh_device
 
 HGTE = PRESETS["hgte-7.0nm"]
 
@@ -84,7 +85,7 @@ def test_bad_lattice_constant_and_tiny_device():
 
 def test_gate_masks_and_contact_doping_per_contact():
     dev = h_bar(length=300.0, width=150.0, arm_length=150.0, arm_width=150.0)
-    from pipeline.geometry import Gate
+    from pipeline.device.outline import Gate
 
     gate = Gate("top", shapely.box(200, 100, 400, 400))
     dev = Device(dev.name, dev.outline, dev.contacts, (gate,))

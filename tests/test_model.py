@@ -4,11 +4,11 @@ import kwant
 import numpy as np
 import pytest
 
-from pipeline import model
+import pipeline.physics.bhz as model
 from pipeline.errors import ModelError
-from pipeline.materials import PRESETS, BHZParameters, get_preset
-from pipeline.mesh import strip_lead
-from pipeline.preflight import lattice_bulk_gap, strip_edge_properties
+from pipeline.physics.materials import PRESETS, BHZParameters, get_preset
+from pipeline.system.mesh import strip_lead
+from pipeline.system.preflight import lattice_bulk_gap, strip_edge_properties
 
 # Source: the measured set, equal to Koenig et al., J. Phys. Soc. Jpn. 77, 031007
 # (2008) for a 7 nm HgTe well: A = 364.5 meV nm, B = -686, D = -512 meV nm^2, M = -10 meV.

@@ -3,14 +3,15 @@
 import numpy as np
 import pytest
 
-from pipeline.config import parse_config
-from pipeline.engine import run_task, uses_spin_blocks
+from pipeline.device.templates import h_bar, hall_bar, two_terminal_strip
 from pipeline.errors import ModelError
-from pipeline.geometry import h_bar, hall_bar, two_terminal_strip
-from pipeline.materials import PRESETS
-from pipeline.mesh import build_system
-from pipeline.model import exchange_matrices
-from pipeline.transport import block_transmission_matrix, transmission_matrix
+from pipeline.physics.bhz import exchange_matrices
+from pipeline.physics.materials import PRESETS
+from pipeline.sweep.config import parse_config
+from pipeline.sweep.runmodel import uses_spin_blocks
+from pipeline.sweep.tasks import solve_realisation
+from pipeline.system.mesh import build_system
+from pipeline.transport.solver import block_transmission_matrix, transmission_matrix
 
 HGTE = PRESETS["hgte-7.0nm"]  # g-factors non-zero: the Zeeman term is exercised
 
@@ -66,7 +67,7 @@ def test_engine_detects_when_the_reduction_applies(tiny_config_text):
     bia = no_magnetic.replace('preset = "hgte-7.0nm"', 'preset = "hgte-7.0nm"\ndelta_bia = 1.6')
     assert not uses_spin_blocks(parse_config(bia))
     # the engine's results agree with and without the reduction
-    a = run_task(parse_config(no_magnetic), (0, 1, 0))
-    b = run_task(parse_config(off), (0, 1, 0))
+    a = solve_realisation(parse_config(no_magnetic), (0, 1, 0))
+    b = solve_realisation(parse_config(off), (0, 1, 0))
     np.testing.assert_allclose(a.transmission, b.transmission, atol=1e-9, rtol=0)
     np.testing.assert_array_equal(a.status, b.status)

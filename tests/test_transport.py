@@ -3,12 +3,12 @@
 import numpy as np
 import pytest
 
-from pipeline import landauer
-from pipeline.geometry import h_bar, two_terminal_strip
-from pipeline.materials import BHZParameters
-from pipeline.mesh import build_system
-from pipeline.model import exchange_matrices
-from pipeline.transport import transmission_matrix
+import pipeline.transport.landauer as landauer
+from pipeline.device.templates import h_bar, two_terminal_strip
+from pipeline.physics.bhz import exchange_matrices
+from pipeline.physics.materials import BHZParameters
+from pipeline.system.mesh import build_system
+from pipeline.transport.solver import transmission_matrix
 
 # Source: Koenig et al., J. Phys. Soc. Jpn. 77, 031007 (2008), 7 nm HgTe well (the issue's
 # measured set): A = 364.5 meV nm, B = -686 meV nm^2, D = -512 meV nm^2, M = -10 meV.
@@ -80,9 +80,9 @@ def test_reciprocity_in_a_field():
     Tm = transmission_matrix(dsys, 12.0, dsys.params(b_perp=-b, potential=pot)).matrix
     np.testing.assert_allclose(Tp, Tm.T, atol=1e-8)
     assert np.abs(Tp - Tp.T).max() > 1e-3  # the field really breaks T_ij = T_ji
-    for (i, j, k, l) in [(0, 3, 1, 2), (0, 2, 1, 3), (1, 3, 0, 2), (0, 1, 2, 3)]:
-        r_plus = landauer.four_terminal_resistance(Tp, i, j, k, l)
-        r_minus = landauer.four_terminal_resistance(Tm, k, l, i, j)
+    for (i, j, k, m) in [(0, 3, 1, 2), (0, 2, 1, 3), (1, 3, 0, 2), (0, 1, 2, 3)]:  # R_ij,km
+        r_plus = landauer.four_terminal_resistance(Tp, i, j, k, m)
+        r_minus = landauer.four_terminal_resistance(Tm, k, m, i, j)
         assert r_plus == pytest.approx(r_minus, rel=1e-7)
     for T in (Tp, Tm):
         landauer.check_sum_rules(T, rtol=1e-8)

@@ -1,0 +1,1 @@
+"""The ``helisweep`` command: parsing, the commands and the demonstration scenario."""

@@ -1,0 +1,577 @@
+"""Supplementary-data package of a run: one folder and a zip of it, with checksums.
+
+:func:`make_package` writes ``<run_dir>/package-<run name>/`` (or ``package-<name>-2``, ``-3``,
+... when that exists: a package is never overwritten) and ``package-<name>[-k].zip`` beside
+it, holding::
+
+    README.md          what each file is, units, how to open the data (for readers)
+    methods.md         a generated methods paragraph (model, device, disorder, statistics)
+    summary.nc         the aggregated summary (NetCDF, open with xarray)
+    summary.csv        the main statistics as one flat table
+    config.toml        the exact configuration text the samples were computed with
+    provenance.json    versions, solver, BLAS, host, seeds, sessions, sample counts
+    lstar.json         L* results (only when given)
+    figures/           every figure (PDF, PNG) with the CSV it plots (and side JSON)
+    geometry/          the device file (only for devices read from a file)
+    data/              further data files of the run (only when given)
+    MANIFEST.sha256    SHA-256 of every other file, in ``sha256sum`` format
+
+The package is assembled in a hidden temporary folder and renamed into place, so an
+interrupted export leaves no half-written package. Exports stay inside the run directory:
+an ``out_dir`` that resolves (symlinks included) outside it is refused. :func:`verify_package`
+checks a folder or zip against its manifest.
+"""
+
+from __future__ import annotations
+
+import csv
+import hashlib
+import importlib.metadata as md
+import json
+import math
+import os
+import shutil
+import tempfile
+import zipfile
+from collections.abc import Iterable, Mapping, Sequence
+from pathlib import Path, PurePosixPath
+from typing import Any
+
+import numpy as np
+
+from pipeline import __version__
+from pipeline.analysis.lstar import lstar_results as lstar_results_of
+from pipeline.analysis.lstar import save_lstar
+from pipeline.analysis.summary import save_summary
+from pipeline.errors import ExportError
+from pipeline.output.figures import RunData, load_run, make_figures
+from pipeline.output.jsonsafe import json_safe
+from pipeline.output.methods import methods_text, store_facts
+from pipeline.sweep.config import AXES
+from pipeline.timestamps import utc_now
+from pipeline.transport.environment import describe as describe_environment
+from pipeline.transport.solver import MUMPS_ORDERING, SOLVER_NAME
+
+__all__ = ['make_package', 'verify_package', 'MANIFEST_NAME']
+
+#: Name of the checksum file inside a package.
+MANIFEST_NAME = "MANIFEST.sha256"
+_FORMAT = "helisweep-package/1"
+_SUMMARY_STATS = ("mean", "std", "sem", "median", "q16", "q84", "ci95_low", "ci95_high",
+                  "typical", "n_samples")
+_OHM_STATS = ("mean_ohm", "median_ohm", "sem_ohm", "ci95_low_ohm", "ci95_high_ohm")
+#: Packages whose versions provenance.json records (beside helisweep and the environment).
+_VERSIONED = ("xarray", "zarr", "dask", "distributed", "matplotlib", "h5netcdf", "shapely",
+              "pydantic")
+
+
+# --------------------------------------------------------------------------- small helpers
+def _sha256(path: Path) -> str:
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for block in iter(lambda: fh.read(1 << 20), b""):
+            h.update(block)
+    return h.hexdigest()
+
+
+def _inside(path: Path, root: Path) -> bool:
+    try:
+        path.relative_to(root)
+    except ValueError:
+        return False
+    return True
+
+
+def _safe_relative(name: str) -> bool:
+    """True for a relative POSIX path without ``..``, drive letters or backslashes."""
+    if not name or name.startswith("/") or "\\" in name or ":" in name.split("/")[0]:
+        return False
+    parts = PurePosixPath(name).parts
+    return all(p not in ("..", ".", "") for p in parts)
+
+
+def _package_dir(base: Path, name: str) -> tuple[Path, Path]:
+    stem = f"package-{name}"
+    k = 1
+    while True:
+        folder = base / (stem if k == 1 else f"{stem}-{k}")
+        zpath = folder.with_name(folder.name + ".zip")
+        if not folder.exists() and not zpath.exists() and not folder.is_symlink():
+            return folder, zpath
+        k += 1
+
+
+def _write_json(path: Path, data: Any) -> None:
+    path.write_text(json.dumps(json_safe(data), indent=2) + "\n", encoding="utf-8")
+
+
+# --------------------------------------------------------------------------- file writers
+def _write_netcdf(summary: Any, path: Path) -> None:
+    """The summary as NetCDF (strings and attributes made portable by the summary stage)."""
+    save_summary(summary, path)
+
+
+def _write_summary_csv(summary: Any, path: Path) -> None:
+    geo_param = str(summary["geometry"].attrs.get("parameter", "") or "")
+    dims = [d for d in AXES if d != "geometry" or geo_param]
+    stats = [s for s in _SUMMARY_STATS if s in summary.data_vars]
+    ohms = [s for s in _OHM_STATS if s in summary.data_vars]
+    head = [f"{geo_param if d == 'geometry' else d} [{AXES[d]}]" for d in dims]
+    head += ["measurement", "unit", "quantised [unit]"]
+    head += [f"{s} [{'1' if s == 'n_samples' else 'unit'}]" for s in stats]
+    head += [f"{s} [ohm]" for s in ohms]
+    with open(path, "w", newline="", encoding="utf-8") as fh:
+        w = csv.writer(fh)
+        w.writerow(head)
+        for label in summary["measurement"].values:
+            sub = summary.sel(measurement=label)
+            unit = str(sub["unit"].values)
+            q = float(sub["quantised"].values)
+            arrays = {s: sub[s].transpose(*AXES).values for s in stats + ohms}
+            for index in np.ndindex(*(summary.sizes[d] for d in AXES)):
+                point = dict(zip(AXES, index, strict=True))
+                row = [float(summary[d].values[point[d]]) for d in dims]
+                row += [str(label), unit, q]
+                for s in stats + ohms:
+                    v = float(arrays[s][index])
+                    row.append("" if math.isnan(v) else repr(v))
+                w.writerow(row)
+
+
+def _versions() -> dict:
+    out = {"helisweep": __version__, **describe_environment()}
+    for pkg in _VERSIONED:
+        try:
+            out[pkg] = md.version(pkg)
+        except md.PackageNotFoundError:
+            out[pkg] = None
+    return out
+
+
+def _provenance(run: RunData, facts: dict, lstar_results: Sequence) -> dict:
+    attrs = facts["attrs"]
+    counts = facts["counts"]
+    failures = list(attrs.get("failures", []))
+    cfg = run.config
+    return {
+        "format": _FORMAT,
+        "package_created": utc_now(),
+        "note": "All values are model estimates of an idealised device, not measurements "
+                "and not a certification of any device.",
+        "run": {
+            "name": attrs.get("run_name", cfg.run.name),
+            "config_hash": attrs.get("config_hash"),
+            "root_seed": attrs.get("root_seed", cfg.run.seed),
+            "store_format": attrs.get("format"),
+            "store_created": attrs.get("created"),
+        },
+        "realisations": {
+            "requested": cfg.run.realisations,
+            "in_store": facts["realisations_in_store"],
+        },
+        "samples": {"done": counts["done"], "failed": counts["failed"],
+                    "missing": counts["missing"], "total": counts["total"]},
+        "failures": {"count": len(failures), "first": failures[:20]},
+        "sessions": list(attrs.get("sessions", [])),
+        "environment_at_export": {**_versions(), "kwant_solver_used_for_export": SOLVER_NAME,
+                                  "mumps_ordering": MUMPS_ORDERING},
+        "summary_attrs": json_safe({k: v for k, v in run.summary.attrs.items()
+                                    if k not in ("config_text", "store_sessions")}),
+        "lstar_results": len(lstar_results),
+    }
+
+
+def _write_lstar(work: Path, lstar_results: Sequence) -> None:
+    """``lstar.json`` in the one L* schema (:func:`pipeline.analysis.lstar.save_lstar`), and
+    the text summary of each result in ``lstar.txt``."""
+    save_lstar(work / "lstar.json", lstar_results)
+    texts = [r.text() for r in lstar_results_of(lstar_results)]
+    (work / "lstar.txt").write_text("\n\n".join(texts) + "\n", encoding="utf-8")
+
+
+# --------------------------------------------------------------------------- README
+_FILE_NOTES = {
+    "summary.nc": "the aggregated statistics over disorder realisations (NetCDF-4)",
+    "summary.csv": "the main statistics of summary.nc as one flat table",
+    "config.toml": "the exact configuration text the samples were computed with",
+    "provenance.json": ("software versions, Kwant solver, BLAS, host, seeds, run sessions and "
+                        "the number of samples done, failed and missing"),
+    "lstar.json": "the longest edge length that stays within tolerance of the ideal value (L*); "
+                  "read it with pipeline.analysis.lstar.load_lstar",
+    "lstar.txt": "the same L* results as readable text",
+    "methods.md": "a generated methods paragraph describing model, device, disorder and statistics",
+    "README.md": "this file",
+    MANIFEST_NAME: "SHA-256 checksums of every other file (sha256sum format)",
+}
+
+
+def _readme_head(run: RunData, counts: Mapping) -> list[str]:
+    cfg = run.config
+    return [
+        f"# Supplementary data: run `{cfg.run.name}`",
+        "",
+        "**These are model estimates** (four-band BHZ tight-binding model solved with Kwant, "
+        "averaged over simulated disorder realisations). They are not measurements and do not "
+        "certify any device.",
+        "",
+        f"Realisations requested per sweep point: {cfg.run.realisations}; samples done "
+        f"{counts['done']}, failed {counts['failed']}, missing {counts['missing']} "
+        f"(of {counts['total']}).",
+        "",
+    ]
+
+
+def _readme_files(files: Sequence[str]) -> list[str]:
+    lines = ["## Files", ""]
+    figs = sorted(f for f in files if f.startswith("figures/"))
+    for f in sorted(files):
+        if f.startswith("figures/"):
+            continue
+        if f.startswith("geometry/"):
+            lines.append(f"- `{f}`: the device geometry file")
+            continue
+        lines.append(f"- `{f}`: {_FILE_NOTES.get(f, 'data file')}")
+    if figs:
+        lines.append(f"- `figures/`: {len(figs)} files. Each figure `fig-*` comes as vector PDF, "
+                     "PNG and the CSV of exactly what it plots (column headers `quantity "
+                     "[unit]`, `[1]` = dimensionless); `fig-current.json` and "
+                     "`fig-vs-length-*.json` hold facts beside the figure (edge fraction, L*).")
+    return lines
+
+
+def _readme_units(summary: Any, labels: Sequence[str]) -> list[str]:
+    lines = [
+        "",
+        "## Units",
+        "",
+        "- energy: meV; gate voltage: V; perpendicular field `b_perp`: T; lengths: nm; "
+        "disorder strength: dimensionless multiplier",
+        "- conductances G in e^2/h, resistances R in h/e^2 (columns `*_ohm` in ohm, with "
+        "h/e^2 = 25812.807... ohm)",
+    ]
+    for label in labels:
+        lines.append(f"- `{label}`: {str(summary['unit'].sel(measurement=label).values)}")
+    return lines
+
+
+def _readme_usage(first_label: str) -> list[str]:
+    return [
+        "",
+        "## The summary",
+        "",
+        "Dimensions: geometry (swept template parameter, nm), disorder_strength, b_perp, "
+        "gate_voltage, energy, measurement. Variables: mean, std (spread of the samples), "
+        "sem (standard error of the mean), median, q16/q84 (16th/84th percentiles), "
+        "ci95_low/ci95_high (95 % confidence interval of the mean), n_samples (realisations "
+        "that entered), and the resistances in ohm. The coordinate `quantised` holds the ideal "
+        "quantum spin Hall value of each measurement, `unit` its unit.",
+        "",
+        "```python",
+        "import xarray as xr",
+        "ds = xr.open_dataset(\"summary.nc\")",
+        f"g = ds[\"mean\"].sel(measurement={first_label!r})",
+        "print(g.sel(energy=g.energy[0]).squeeze())",
+        "```",
+        "",
+        "## Checking the files",
+        "",
+        "    sha256sum -c MANIFEST.sha256",
+        "",
+        "or, in Python, `pipeline.output.package.verify_package(<folder or zip>)`.",
+        "",
+        "In `summary.csv`, `[unit]` in a header means the unit named in that row's `unit` "
+        "column. The per-realisation samples themselves (the Zarr sample store) are not part "
+        "of this package; `config.toml` and `provenance.json` say how to recompute them.",
+        "",
+    ]
+
+
+def _readme(run: RunData, files: Sequence[str], facts: Mapping) -> str:
+    labels = [str(m) for m in run.summary["measurement"].values]
+    lines = (_readme_head(run, facts["counts"]) + _readme_files(files)
+             + _readme_units(run.summary, labels) + _readme_usage(labels[0]))
+    return "\n".join(lines)
+
+
+# --------------------------------------------------------------------------- package
+def _resolve_base(run_dir: Path, out_dir: str | Path | None) -> Path:
+    root = run_dir.resolve(strict=True)
+    if out_dir is None:
+        return root
+    base = Path(out_dir)
+    resolved = base.resolve(strict=False)
+    if not _inside(resolved, root):
+        raise ExportError(
+            f"out_dir {str(out_dir)!r} resolves to {str(resolved)!r}, outside the run directory "
+            f"{str(root)!r}; packages are written inside the run directory. Choose a folder "
+            f"inside it (or leave out_dir out) and copy the zip from there"
+        )
+    return resolved
+
+
+def _copy_figures(figures: Iterable, dest: Path) -> None:
+    dest.mkdir(parents=True, exist_ok=True)
+    seen: set[str] = set()
+    for f in figures:
+        src = Path(f)
+        if not src.is_file():
+            raise ExportError(f"figure file {str(src)!r} does not exist or is not a file")
+        if src.name in seen:
+            raise ExportError(f"two figure files are named {src.name!r}; rename one")
+        seen.add(src.name)
+        shutil.copyfile(src, dest / src.name)
+
+
+def _zip(folder: Path, zpath: Path) -> None:
+    tmp = zpath.with_name(f".{zpath.name}.partial")
+    top = folder.name
+    with zipfile.ZipFile(tmp, "w", compression=zipfile.ZIP_DEFLATED) as zf:
+        for path in sorted(p for p in folder.rglob("*") if p.is_file()):
+            rel = path.relative_to(folder).as_posix()
+            zf.write(path, arcname=f"{top}/{rel}")
+    if zpath.exists():
+        tmp.unlink()
+        raise ExportError(f"{str(zpath)!r} appeared while the package was written; try again")
+    os.replace(tmp, zpath)
+
+
+def _manifest(folder: Path) -> str:
+    lines = []
+    for path in sorted(p for p in folder.rglob("*") if p.is_file()):
+        rel = path.relative_to(folder).as_posix()
+        if rel == MANIFEST_NAME:
+            continue
+        lines.append(f"{_sha256(path)}  {rel}")
+    return "\n".join(lines) + "\n"
+
+
+def _write_data(work: Path, run: RunData, facts: Mapping) -> None:
+    """summary.nc, summary.csv, config.toml and the device file of a file-based device."""
+    _write_netcdf(run.summary, work / "summary.nc")
+    _write_summary_csv(run.summary, work / "summary.csv")
+    (work / "config.toml").write_text(
+        str(facts["attrs"].get("config_text") or run.config.source_text), encoding="utf-8")
+    if run.config.device.file is not None:
+        src = Path(run.config.base_dir) / run.config.device.file
+        if src.is_file():
+            (work / "geometry").mkdir()
+            shutil.copyfile(src, work / "geometry" / src.name)
+
+
+def _write_figures(work: Path, run: RunData, figures: Iterable | None,
+                   lstar_results: Sequence) -> None:
+    """figures/: made afresh when ``figures`` is None, else the given files (if any)."""
+    if figures is None:
+        make_figures(run, work / "figures", lstar=list(lstar_results) or None)
+        return
+    figures = list(figures)
+    if figures:
+        _copy_figures(figures, work / "figures")
+
+
+def _copy_extra(work: Path, extra_files: Iterable) -> None:
+    extra_files = [Path(f) for f in extra_files]
+    if not extra_files:
+        return
+    (work / "data").mkdir()
+    for f in extra_files:
+        if not f.is_file():
+            raise ExportError(f"extra file {str(f)!r} does not exist")
+        shutil.copyfile(f, work / "data" / f.name)
+
+
+def _write_documents(work: Path, run: RunData, facts: Mapping, lstar_results: Sequence) -> None:
+    """lstar.json, provenance.json, methods.md, README.md and, last, the manifest."""
+    if lstar_results:
+        _write_lstar(work, lstar_results)
+    _write_json(work / "provenance.json", _provenance(run, dict(facts), lstar_results))
+    (work / "methods.md").write_text(methods_text(run, facts), encoding="utf-8")
+    files = sorted(p.relative_to(work).as_posix() for p in work.rglob("*") if p.is_file())
+    (work / "README.md").write_text(_readme(run, files + ["README.md", MANIFEST_NAME], facts),
+                                    encoding="utf-8")
+    (work / MANIFEST_NAME).write_text(_manifest(work), encoding="utf-8")
+
+
+def _assemble(base: Path, folder: Path, fill) -> None:
+    """Fill a hidden temporary folder with ``fill(work)`` and rename it to ``folder``;
+    an interrupted or failed export leaves nothing behind."""
+    work = Path(tempfile.mkdtemp(prefix=f".{folder.name}.partial-", dir=base))
+    try:
+        fill(work)
+        if folder.exists():
+            raise ExportError(f"{str(folder)!r} appeared while the package was written; try again")
+        os.rename(work, folder)
+    except BaseException:
+        shutil.rmtree(work, ignore_errors=True)
+        raise
+
+
+def make_package(
+    run_dir: str | Path,
+    *,
+    out_dir: str | Path | None = None,
+    lstar_results: Sequence[Any] = (),
+    figures: Iterable[str | Path] | None = None,
+    summary: Any = None,
+    store_path: str | Path | None = None,
+    config: Any = None,
+    extra_files: Iterable[str | Path] = (),
+) -> tuple[Path, Path]:
+    """Write the supplementary-data package of a run (a folder and a zip of it).
+
+    Parameters
+    ----------
+    run_dir : str or Path
+        The run directory (holding ``samples.zarr`` unless ``store_path`` is given).
+    out_dir : str or Path, optional
+        Where the package goes; must resolve inside ``run_dir`` (default ``run_dir``).
+    lstar_results : sequence or mapping, optional
+        L* results (:class:`pipeline.analysis.lstar.LStarResult` or mappings like its
+        ``to_dict()``; a mapping's values are taken), written to ``lstar.json`` and drawn on
+        the length figures.
+    figures : iterable of paths, optional
+        Figure files to include (e.g. what :func:`pipeline.output.figures.make_figures` returned).
+        ``None`` (default) makes the figures afresh; an empty sequence includes none.
+    summary : xarray.Dataset, str or Path, optional
+        The summary (or a NetCDF file of it); default :func:`pipeline.analysis.summary.summarize`.
+    store_path : str or Path, optional
+        The sample store, default ``<run_dir>/samples.zarr``.
+    config : SweepConfig, optional
+        The configuration; default parsed from the text stored in the store.
+    extra_files : iterable of paths, optional
+        Further data files of the run (e.g. the concatenated-edge results), copied into
+        ``data/`` of the package.
+
+    Returns
+    -------
+    folder : Path
+        ``<out_dir>/package-<run name>`` (``-2``, ``-3``, ... appended when taken: an existing
+        package is never overwritten).
+    zip_path : Path
+        The zip of the folder, beside it, with entries under ``package-<run name>[-k]/``.
+
+    Raises
+    ------
+    ExportError
+        If ``out_dir`` is outside the run directory or an input is missing.
+    """
+    run_dir = Path(run_dir)
+    if not run_dir.is_dir():
+        raise ExportError(f"run directory {str(run_dir)!r} does not exist; run the sweep first")
+    base = _resolve_base(run_dir, out_dir)
+    store = Path(store_path) if store_path is not None else run_dir / "samples.zarr"
+    run = load_run(store, summary, config=config)
+    facts = store_facts(run.store_path)
+    name = str(facts["attrs"].get("run_name", run.config.run.name))
+    base.mkdir(parents=True, exist_ok=True)
+    folder, zpath = _package_dir(base, name)
+    lstar_results = list(lstar_results.values() if isinstance(lstar_results, Mapping)
+                         else lstar_results)
+
+    def fill(work: Path) -> None:
+        _write_data(work, run, facts)
+        _write_figures(work, run, figures, lstar_results)
+        _copy_extra(work, extra_files)
+        _write_documents(work, run, facts, lstar_results)
+
+    _assemble(base, folder, fill)
+    _zip(folder, zpath)
+    return folder, zpath
+
+
+# --------------------------------------------------------------------------- verification
+def _parse_manifest(text: str) -> tuple[dict[str, str], list[str]]:
+    entries: dict[str, str] = {}
+    problems: list[str] = []
+    for n, line in enumerate(text.splitlines(), 1):
+        if not line.strip():
+            continue
+        digest, sep, name = line.partition("  ")
+        if not sep or len(digest) != 64 or any(c not in "0123456789abcdef" for c in digest):
+            problems.append(f"{MANIFEST_NAME} line {n} is not '<sha256>  <path>': {line!r}")
+            continue
+        if not _safe_relative(name):
+            problems.append(f"{MANIFEST_NAME} line {n} names an unsafe path {name!r}")
+            continue
+        entries[name] = digest
+    return entries, problems
+
+
+def _verify_folder(folder: Path) -> list[str]:
+    manifest = folder / MANIFEST_NAME
+    if not manifest.is_file():
+        return [f"no {MANIFEST_NAME} in {str(folder)!r}"]
+    entries, problems = _parse_manifest(manifest.read_text(encoding="utf-8"))
+    for name, digest in entries.items():
+        path = folder / name
+        if path.is_symlink():
+            problems.append(f"{name}: is a symbolic link")
+        elif not path.is_file():
+            problems.append(f"{name}: listed in the manifest but missing")
+        elif _sha256(path) != digest:
+            problems.append(f"{name}: SHA-256 does not match the manifest (file changed)")
+    for path in sorted(folder.rglob("*")):
+        rel = path.relative_to(folder).as_posix()
+        if (path.is_file() or path.is_symlink()) and rel != MANIFEST_NAME and rel not in entries:
+            problems.append(f"{rel}: present but not listed in the manifest")
+    return problems
+
+
+def _verify_zip(zpath: Path) -> list[str]:
+    problems: list[str] = []
+    try:
+        zf = zipfile.ZipFile(zpath)
+    except zipfile.BadZipFile as exc:
+        return [f"{str(zpath)!r} is not a readable zip ({exc})"]
+    with zf:
+        names = [i.filename for i in zf.infolist() if not i.is_dir()]
+        tops = set()
+        for n in names:
+            if not _safe_relative(n):
+                problems.append(f"zip entry {n!r} is not a safe relative path")
+            tops.add(n.split("/", 1)[0])
+        if len(tops) != 1:
+            problems.append(f"zip entries are not under one top folder ({sorted(tops)})")
+            return problems
+        top = tops.pop()
+        mname = f"{top}/{MANIFEST_NAME}"
+        if mname not in names:
+            return problems + [f"no {MANIFEST_NAME} under {top}/ in the zip"]
+        entries, bad = _parse_manifest(zf.read(mname).decode("utf-8"))
+        problems += bad
+        inside = {n[len(top) + 1:] for n in names if n.startswith(top + "/")}
+        for name, digest in entries.items():
+            if name not in inside:
+                problems.append(f"{name}: listed in the manifest but missing from the zip")
+                continue
+            h = hashlib.sha256()
+            with zf.open(f"{top}/{name}") as fh:
+                for block in iter(lambda: fh.read(1 << 20), b""):
+                    h.update(block)
+            if h.hexdigest() != digest:
+                problems.append(f"{name}: SHA-256 does not match the manifest (file changed)")
+        for name in sorted(inside - set(entries) - {MANIFEST_NAME}):
+            problems.append(f"{name}: present in the zip but not listed in the manifest")
+    return problems
+
+
+def verify_package(folder_or_zip: str | Path) -> list[str]:
+    """Check a package folder or zip against its manifest.
+
+    Parameters
+    ----------
+    folder_or_zip : str or Path
+        A package folder or its zip.
+
+    Returns
+    -------
+    list of str
+        The problems found (missing, changed or unlisted files; unsafe paths); empty when
+        every file matches its checksum.
+    """
+    path = Path(folder_or_zip)
+    if path.is_dir():
+        return _verify_folder(path)
+    if path.is_file():
+        return _verify_zip(path)
+    return [f"{str(path)!r} is neither a package folder nor a zip"]

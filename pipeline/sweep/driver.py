@@ -1,0 +1,223 @@
+"""Execution: spread a sweep's disorder realisations over Dask workers and store the samples.
+
+Work unit (a *task*): one disorder realisation at one geometry and one disorder strength,
+solved at every (field, gate voltage, energy) point of the sweep. The disorder of a sample is
+a function of (root seed, realisation index, lattice site) only (see
+:mod:`pipeline.physics.disorder`), so it is the same fixed sample across energy, gate and field --
+as in a real device swept in gate voltage -- and the numbers do not depend on task order,
+batching or worker count.
+
+Each worker process keeps what is expensive to make and independent of the realisation:
+
+* the finalized Kwant system of each geometry (built once per worker);
+* lead modes per (geometry, energy, field) via Kwant's ``precalculate`` (leads are clean and
+  ungated, so a gate sweep needs them only once per energy).
+
+Workers return small arrays; the driver alone writes them to the Zarr store as tasks
+finish, so Zarr writes stay off the workers' critical path and there is a single writer.
+At most a bounded window of tasks is in flight, which also bounds what a killed run loses.
+"""
+
+from __future__ import annotations
+
+import sys
+import time
+from collections.abc import Mapping
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from pipeline.errors import StoreError
+from pipeline.sweep.checks import check_resources, validate_run
+from pipeline.sweep.clusters import allocation_client, open_client
+from pipeline.sweep.config import SweepConfig, config_hash, load_config
+from pipeline.sweep.store import SampleStore
+from pipeline.sweep.tasks import run_block
+from pipeline.transport.environment import describe
+
+__all__ = ['run_sweep', 'run_on_cluster', 'run_in_allocation']
+
+@dataclass
+class _Progress:
+    total: int
+    stream: object = sys.stderr
+    enabled: bool = True
+
+    def __post_init__(self):
+        self.done = 0
+        self.t0 = time.monotonic()
+        self._last = 0.0
+
+    def update(self, n: int = 1) -> None:
+        self.done += n
+        now = time.monotonic()
+        if not self.enabled or (now - self._last < 0.5 and self.done < self.total):
+            return
+        self._last = now
+        rate = self.done / max(now - self.t0, 1e-9)
+        eta = (self.total - self.done) / rate if rate > 0 else float("inf")
+        width = 30
+        fill = int(width * self.done / max(self.total, 1))
+        self.stream.write(
+            f"\r[{'#' * fill}{'.' * (width - fill)}] {self.done}/{self.total} samples "
+            f"{rate:.2f}/s ETA {eta:,.0f} s "
+        )
+        if self.done >= self.total:
+            self.stream.write("\n")
+        self.stream.flush()
+
+
+def run_sweep(
+    cfg: SweepConfig,
+    *,
+    client=None,
+    store_path: str | Path | None = None,
+    fresh: bool = False,
+    progress: bool = True,
+    max_in_flight: int | None = None,
+    max_tasks: int | None = None,
+) -> SampleStore:
+    """Run (or resume) a sweep and return its store.
+
+    Bad input is refused before any compute and before any cluster starts
+    (:func:`pipeline.sweep.checks.validate_run`). With ``client=None`` a client is obtained
+    for the duration of the call through the config's ``[cluster]`` table
+    (:func:`pipeline.sweep.clusters.open_client`). Rerunning the same command computes only
+    the samples still missing; a different configuration is refused unless ``fresh`` (the
+    old store is then moved aside, not deleted). ``max_tasks`` stops after that many tasks
+    (a partial run that a later call resumes).
+    """
+    path = Path(store_path) if store_path else cfg.run_dir / "samples.zarr"
+    n_workers, worker_mb = _worker_facts(client)
+    names = validate_run(cfg, n_workers, path, worker_mb)
+    if client is None:
+        with open_client(cfg, store_path=path) as session:
+            return _drive(cfg, session.client, path, names, fresh=fresh, progress=progress,
+                          max_in_flight=max_in_flight or session.max_in_flight,
+                          max_tasks=max_tasks)
+    return _drive(cfg, client, path, names, fresh=fresh, progress=progress,
+                  max_in_flight=max_in_flight, max_tasks=max_tasks)
+
+
+def _worker_facts(client) -> tuple[int | None, float | None]:
+    """Number of workers and their smallest memory limit (MB), as far as a client knows."""
+    if client is None:
+        return None, None
+    workers = client.scheduler_info().get("workers", {})
+    limits = [w.get("memory_limit") or 0 for w in workers.values()]
+    return len(workers) or None, (min(limits) / 1e6 if limits and min(limits) > 0 else None)
+
+
+def _open_store(cfg, client, path, names, *, fresh, progress) -> tuple[SampleStore, int]:
+    """Check resources on the actual workers, open (or create) the store, repair damage."""
+    n_workers = len(client.scheduler_info().get("workers", {})) or 1
+    estimates = check_resources(cfg, n_workers, path, _worker_facts(client)[1])
+    store = SampleStore.open_for_run(
+        path, cfg, names, fresh=fresh, n_workers=n_workers,
+        provenance={"workers": n_workers, "config_hash": config_hash(cfg), **describe()},
+    )
+    damaged = store.repair_for_resume()
+    if progress:
+        if damaged:
+            print(f"{len(damaged)} damaged chunk(s) found (checksum); their tasks will be "
+                  f"recomputed: " + ", ".join(f"{n}{k}" for n, k, _ in damaged[:5]),
+                  file=sys.stderr)
+        print(f"estimated memory per solve {estimates['memory_per_solve_mb']:,.0f} MB "
+              f"(per worker available {estimates['memory_per_worker_mb']:,.0f} MB), store up "
+              f"to {estimates['store_mb']:,.1f} MB", file=sys.stderr)
+    return store, n_workers
+
+
+def _points_per_realisation(cfg: SweepConfig) -> int:
+    """Samples one realisation contributes at one geometry and strength."""
+    return int(np.prod([len(cfg.axes[k]) for k in ("b_perp", "gate_voltage", "energy")]))
+
+
+def _drive(cfg, client, path, names, *, fresh, progress, max_in_flight, max_tasks) -> SampleStore:
+    """Submit the pending blocks, write each as it finishes, keep a bounded window in flight."""
+    from dask.distributed import as_completed  # heavy: only where a cluster is used
+
+    store, n_workers = _open_store(cfg, client, path, names, fresh=fresh, progress=progress)
+    pending = store.pending_blocks(cfg.run.realisations)
+    points = _points_per_realisation(cfg)
+    queue = list(pending)[: max_tasks if max_tasks is not None else None]
+    if progress:
+        print(f"store {path}: {store.counts()['done']} samples done, {len(pending)} tasks "
+              f"({sum(len(r) for _, r in pending) * points} samples) to go on "
+              f"{n_workers} worker(s)", file=sys.stderr)
+        if getattr(client, "dashboard_link", None):
+            print(f"Dask dashboard: {client.dashboard_link}", file=sys.stderr)
+    bar = _Progress(sum(len(r) for _, r in queue) * points, enabled=progress)
+    n_tasks, window = len(queue), max_in_flight or 4 * n_workers
+    cfg_future = client.scatter(cfg, broadcast=True)
+    futures, ac = {}, as_completed()
+
+    def submit_next():
+        key, reals = queue.pop(0)
+        fut = client.submit(run_block, cfg_future, key, reals, retries=2, pure=False,
+                            key=f"helisweep-{key[0]}-{key[1]}-{key[2]}-{time.monotonic_ns()}")
+        futures[fut] = (key, reals)
+        ac.add(fut)
+
+    while queue and len(futures) < window:
+        submit_next()
+    failed = 0
+    for fut in ac:
+        key, reals = futures.pop(fut)
+        results = fut.result()
+        _write(store, key, reals, results)
+        failed += sum(len(r.failures) for r in results)
+        bar.update(len(reals) * points)
+        if queue:
+            submit_next()
+    store.finish_session({"tasks": n_tasks, "failed_samples": failed})
+    if progress and failed:
+        print(f"{failed} sample(s) failed; reasons are in the store's 'failures' attribute",
+              file=sys.stderr)
+    return store
+
+
+def _write(store: SampleStore, key, reals, results) -> None:
+    """Write one finished block; a failing file system stops the run, keeping the rest."""
+    try:
+        store.write_block(key, reals, results)
+    except OSError as exc:  # full disk, quota, lost mount
+        raise StoreError(
+            f"writing task {key} to the store {str(store.path)!r} failed: {exc}. The store "
+            f"keeps every task written before (this one stays missing). Free space or "
+            f"fix the file system, then rerun the same command to resume"
+        ) from exc
+
+
+def run_on_cluster(cfg: SweepConfig, overrides: Mapping[str, Any] | None = None, *,
+                   workers: int | None = None, **run_kwargs) -> SampleStore:
+    """Run (or resume) a sweep on a client from :func:`pipeline.sweep.clusters.open_client`
+    (the config's ``[cluster]`` resolved with ``overrides``), closing it after.
+
+    ``**run_kwargs`` go to :func:`run_sweep` (``store_path``, ``fresh``, ``progress``,
+    ``max_tasks``, ...).
+    """
+    with open_client(cfg, overrides, workers=workers,
+                     store_path=run_kwargs.get("store_path")) as session:
+        if session.max_in_flight is not None:
+            run_kwargs.setdefault("max_in_flight", session.max_in_flight)
+        return run_sweep(cfg, client=session.client, **run_kwargs)
+
+
+def run_in_allocation(config_path: str | Path, *, scheduler_file: str | Path,
+                      store_path: str | Path | None = None, expected_workers: int = 1,
+                      timeout: float = 600.0, fresh: bool = False,
+                      progress: bool = False) -> SampleStore:
+    """Run (or resume) a sweep on the Dask cluster of a batch job, then shut it down (see
+    :func:`pipeline.sweep.clusters.allocation_client`)."""
+    cfg = load_config(config_path)
+    with allocation_client(scheduler_file, expected_workers=expected_workers,
+                           timeout=timeout) as session:
+        store = run_sweep(cfg, client=session.client, store_path=store_path, fresh=fresh,
+                          progress=progress, max_in_flight=session.max_in_flight)
+        c = store.counts()
+        print(f"helisweep: {store.path}: {c['done']} done, {c['failed']} failed, "
+              f"{c['missing']} missing of {c['total']} samples", file=sys.stderr, flush=True)
+        return store

@@ -1,0 +1,469 @@
+"""The sample store: one Zarr (v3) group per run holding every disorder sample.
+
+Layout (``xarray.open_zarr(path)`` reads it; dims and units in attrs)::
+
+    transmission  (realisation, geometry, disorder_strength, b_perp, gate_voltage, energy,
+                   lead_to, lead_from)   float64   T[i, j]: from contact j to contact i
+    modes         (..., lead)            int16     open modes per lead (0 until computed)
+    measurements  (..., measurement)     float64   the requested R (h/e^2) and G (e^2/h)
+    status        (realisation, ..., energy) int8  0 missing, 1 done, 2 failed
+                                                   (the codes of :class:`SampleStatus`)
+    segments/     a sub-group of segment pools for edges beyond direct reach, written only
+                  through :class:`SegmentPoolStore` (xarray's reader ignores it)
+
+The dimensions ``lead_to``, ``lead_from`` and ``lead`` are the device's contacts (the names
+are part of store format 1).
+
+Words: a *sample* is one realisation at one sweep point; a *block* is the realisations solved
+together as one Dask task. Chunks hold one block (``realisation_block`` realisations, see the
+attributes; enough for about eight samples) at one geometry and disorder strength, all field,
+gate and energy points. Every chunk carries a CRC32C checksum (a Zarr v3 codec), so a
+damaged chunk raises on read instead of being averaged silently. Chunks are written by
+Zarr's local store through a temporary file and a rename, and a block's ``status`` is written
+after its data, so a killed run leaves complete blocks or missing ones, never half-written
+ones; failure reasons go to the group attributes.
+
+Stores never hold executable content: plain numeric and string arrays and JSON attributes
+(no pickle codecs, no object arrays).
+"""
+
+from __future__ import annotations
+
+import shutil
+from dataclasses import dataclass
+from enum import IntEnum
+from pathlib import Path
+
+import numpy as np
+import zarr
+from zarr.codecs import Crc32cCodec, ZstdCodec
+
+from pipeline.errors import StoreError
+from pipeline.sweep.config import AXES, SweepConfig, config_hash
+from pipeline.timestamps import file_stamp, utc_now
+from pipeline.transport.landauer import parse_measurement
+
+__all__ = ['SampleStore', 'SWEEP_DIMS', 'block_size', 'SampleStatus', 'RealisationSamples', 'SegmentPoolStore']
+
+SWEEP_DIMS = ("realisation",) + tuple(AXES)
+
+
+class SampleStatus(IntEnum):
+    """The one table of sample status codes (the ``status`` array of a store)."""
+
+    MISSING = 0  #: not computed yet (or its chunk was damaged and will be recomputed)
+    DONE = 1  #: computed and stored
+    FAILED = 2  #: attempted; the reason is in the store's ``failures`` attribute
+
+
+_FORMAT = "helisweep-samples/1"
+
+
+def _codecs():
+    return [ZstdCodec(level=3), Crc32cCodec()]
+
+
+@dataclass
+class SampleStore:
+    """Handle on a run's Zarr group (see module docstring)."""
+
+    path: Path
+    group: zarr.Group
+
+    # ------------------------------------------------------------------ opening
+    @classmethod
+    def open_for_run(
+        cls,
+        path: str | Path,
+        cfg: SweepConfig,
+        contact_names: tuple[str, ...],
+        *,
+        provenance: dict,
+        fresh: bool = False,
+        n_workers: int = 1,
+    ) -> "SampleStore":
+        """Create the store, or reopen it to resume the same configuration.
+
+        A store written by a different configuration is refused unless ``fresh`` is set;
+        then the old store is moved aside (``samples.zarr.replaced-<time>``), never deleted.
+        Raising the number of realisations grows the store; samples already there are kept.
+        """
+        path = Path(path)
+        digest = config_hash(cfg)
+        if path.exists():
+            try:
+                group = zarr.open_group(str(path), mode="r+")
+                old = dict(group.attrs)
+            except Exception as exc:  # not a Zarr group at all
+                raise StoreError(
+                    f"{str(path)!r} exists but is not a readable sample store ({exc}); move it "
+                    f"away or choose another run directory"
+                ) from exc
+            if old.get("format") != _FORMAT:
+                raise StoreError(
+                    f"{str(path)!r} is not a helisweep sample store (format {old.get('format')!r}); "
+                    f"choose another run directory"
+                )
+            if old.get("config_hash") != digest:
+                if not fresh:
+                    raise StoreError(
+                        f"the store {str(path)!r} was written by a different configuration "
+                        f"(hash {str(old.get('config_hash'))[:12]} vs {digest[:12]} now). Resuming "
+                        f"would mix incompatible samples. Restore the old config, choose another "
+                        f"run directory, or pass --fresh to move the old store aside and start anew"
+                    )
+                aside = path.with_name(path.name + ".replaced-" + file_stamp())
+                shutil.move(str(path), str(aside))
+            else:
+                store = cls(path, group)
+                store._grow(cfg.run.realisations)
+                store._log_session(provenance)
+                return store
+        store = cls._create(path, cfg, contact_names, digest, provenance, n_workers)
+        store._log_session(provenance)
+        return store
+
+    @classmethod
+    def open(cls, path: str | Path, mode: str = "r") -> "SampleStore":
+        path = Path(path)
+        if not path.exists():
+            raise StoreError(f"no sample store at {str(path)!r}; run the sweep first")
+        group = zarr.open_group(str(path), mode=mode)
+        if group.attrs.get("format") != _FORMAT:
+            raise StoreError(f"{str(path)!r} is not a helisweep sample store")
+        return cls(path, group)
+
+    @classmethod
+    def _create(cls, path, cfg, contact_names, digest, provenance, n_workers=1) -> "SampleStore":
+        import dask.array as da  # heavy: only where a cluster is used
+        import xarray as xr  # heavy: only where datasets are built or read
+
+        axes = cfg.axes
+        nr = cfg.run.realisations
+        sweep_shape = (nr,) + tuple(len(v) for v in axes.values())
+        n = len(contact_names)
+        labels = list(cfg.measure.labels)
+        block = block_size(cfg, n_workers)
+        task_chunk = (block, 1, 1) + sweep_shape[3:]
+        coords = {"realisation": np.arange(nr, dtype=np.int64)}
+        coords.update({k: np.asarray(v, dtype=float) for k, v in axes.items()})
+        names = np.array(contact_names, dtype=object)
+        coords.update({"lead_to": names, "lead_from": names, "lead": names,
+                       "measurement": np.array(labels, dtype=object)})
+
+        def lazy(shape, dtype, fill):
+            return da.full(shape, fill, dtype=dtype, chunks=-1)
+
+        dims = SWEEP_DIMS
+
+        units = [parse_measurement(m).unit for m in labels]
+        ds = xr.Dataset(
+            {
+                "transmission": (dims + ("lead_to", "lead_from"),
+                                 lazy(sweep_shape + (n, n), "f8", np.nan),
+                                 {"units": "1", "long_name": "transmission probability from lead_from to lead_to (diagonal: reflection)"}),
+                "modes": (dims + ("lead",), lazy(sweep_shape + (n,), "i2", 0),
+                          {"units": "1", "long_name": "open modes per lead"}),
+                "measurements": (dims + ("measurement",), lazy(sweep_shape + (len(labels),), "f8", np.nan),
+                                 {"long_name": "requested transport measurements", "units_by_measurement": units}),
+                "status": (dims, lazy(sweep_shape, "i1", SampleStatus.MISSING),
+                           {"long_name": "sample status", "flag_values": [int(s) for s in SampleStatus],
+                            "flag_meanings": " ".join(s.name.lower() for s in SampleStatus)}),
+            },
+            coords=coords,
+        )
+        for k, unit in AXES.items():
+            ds[k].attrs["units"] = unit
+        ds["energy"].attrs["long_name"] = "Fermi energy"
+        ds["gate_voltage"].attrs["long_name"] = "gate voltage"
+        ds["b_perp"].attrs["long_name"] = "perpendicular magnetic field"
+        ds["disorder_strength"].attrs["long_name"] = "disorder strength multiplier"
+        ds["geometry"].attrs.update(
+            long_name="swept geometry parameter",
+            parameter=cfg.sweep.geometry.parameter if cfg.sweep.geometry else "",
+        )
+        enc = {
+            "transmission": {"chunks": task_chunk + (n, n)},
+            "modes": {"chunks": task_chunk + (n,)},
+            "measurements": {"chunks": task_chunk + (len(labels),)},
+            "status": {"chunks": task_chunk},
+        }
+        for v in enc.values():
+            v["compressors"] = _codecs()
+        ds.attrs.update(
+            format=_FORMAT,
+            config_hash=digest,
+            config_text=cfg.source_text,
+            run_name=cfg.run.name,
+            root_seed=cfg.run.seed,
+            realisation_block=block,
+            created=utc_now(),
+            sessions=[],
+            failures=[],
+        )
+        path.parent.mkdir(parents=True, exist_ok=True)
+        ds.to_zarr(str(path), mode="w-", compute=False, encoding=enc, zarr_format=3, consolidated=False)
+        group = zarr.open_group(str(path), mode="r+")
+        return cls(path, group)
+
+    def _grow(self, realisations: int) -> None:
+        self.__dict__.pop("_arrays", None)
+        have = self.group["realisation"].shape[0]
+        if realisations <= have:
+            return
+        for name in ("transmission", "modes", "measurements", "status"):
+            arr = self.group[name]
+            arr.resize((realisations,) + arr.shape[1:])
+        coord = self.group["realisation"]
+        coord.resize((realisations,))
+        coord[have:] = np.arange(have, realisations)
+
+    def _log_session(self, provenance: dict) -> None:
+        sessions = list(self.group.attrs.get("sessions", []))
+        sessions.append({"started": utc_now(), **provenance})
+        self.group.attrs["sessions"] = sessions
+
+    # ------------------------------------------------------------------ reading
+    @property
+    def shape(self) -> tuple[int, ...]:
+        return tuple(self.group["status"].shape)
+
+    def status(self) -> np.ndarray:
+        """Status of every sample (see module docstring), shape of the sweep grid."""
+        return self.group["status"][...]
+
+    @property
+    def block(self) -> int:
+        """Realisations per block, i.e. per chunk and per task (fixed when the store is created)."""
+        return int(self.group.attrs.get("realisation_block", 1))
+
+    def pending_blocks(self, realisations: int | None = None) -> list[tuple[tuple[int, int, int], list[int]]]:
+        """Tasks still to do: ``((first realisation of the block, geometry, strength),
+        [realisations of that block with a sample missing])``."""
+        st = self.status()
+        if realisations is not None:
+            st = st[:realisations]
+        missing = (st == SampleStatus.MISSING).reshape(st.shape[:3] + (-1,)).any(axis=-1)
+        b = self.block
+        out = []
+        for r0 in range(0, missing.shape[0], b):
+            part = missing[r0:r0 + b]
+            for g, s_ in np.argwhere(part.any(axis=0)):
+                reals = [r0 + int(i) for i in np.flatnonzero(part[:, g, s_])]
+                out.append(((r0, int(g), int(s_)), reals))
+        return out
+
+    def counts(self) -> dict[str, int]:
+        st = self.status()
+        return {"done": int((st == SampleStatus.DONE).sum()), "failed": int((st == SampleStatus.FAILED).sum()),
+                "missing": int((st == SampleStatus.MISSING).sum()), "total": int(st.size)}
+
+    def verify(self) -> list[tuple[str, tuple[int, int, int], str]]:
+        """Read every chunk and return the damaged ones as (array, block key, reason).
+
+        Each chunk carries a CRC32C checksum, so a flipped bit or a truncated file fails to
+        decode here instead of being averaged. Whole arrays are read first; only an array
+        that fails is scanned chunk by chunk to say where.
+        """
+        damaged = []
+        for name in ("status", "transmission", "modes", "measurements"):
+            arr = self.group[name]
+            try:
+                arr[...]
+                continue
+            except Exception:  # noqa: BLE001 - any decode failure is a damaged chunk
+                pass
+            nr, ng, ns = arr.shape[:3]
+            b = self.block
+            for r0 in range(0, nr, b):
+                for g, s_ in np.ndindex(ng, ns):
+                    try:
+                        arr[r0:r0 + b, g, s_]
+                    except Exception as exc:  # noqa: BLE001
+                        damaged.append((name, (r0, int(g), int(s_)),
+                                        f"{type(exc).__name__}: {exc}"[:200]))
+        return damaged
+
+    def repair_for_resume(self) -> list[tuple[str, tuple[int, int, int], str]]:
+        """Mark the blocks of damaged chunks as missing so a resumed run recomputes them.
+
+        A damaged chunk's samples are already lost; recomputing them (the disorder is a
+        function of seed and indices) restores exactly what was there. Returns what was found.
+        """
+        damaged = self.verify()
+        if damaged:
+            status = self.group["status"]
+            b = self.block
+            for _, (r0, g, s_), _ in damaged:
+                region = status[r0:r0 + b, g, s_]
+                status[r0:r0 + b, g, s_] = np.zeros_like(region)
+            notes = list(self.group.attrs.get("repairs", []))
+            notes += [{"array": n, "task": list(k), "reason": why, "when": utc_now()} for n, k, why in damaged]
+            self.group.attrs["repairs"] = notes
+        return damaged
+
+    def report(self, max_failures: int = 10) -> str:
+        """Human-readable status: done/total overall and per axis value, failures with reasons."""
+        st = self.status()
+        c = self.counts()
+        lines = [f"{self.path}: {c['done']} done, {c['failed']} failed, {c['missing']} missing "
+                 f"of {c['total']} samples ({len(self.pending_blocks())} blocks left)"]
+        for axis, name in enumerate(SWEEP_DIMS):
+            if st.shape[axis] <= 1:
+                continue
+            values = self.group[name][...]
+            other = tuple(i for i in range(st.ndim) if i != axis)
+            done = (st == SampleStatus.DONE).sum(axis=other)
+            total = np.prod([st.shape[i] for i in other])
+            unit = self.group[name].attrs.get("units", "")
+            cells = [f"{v:g}{(' ' + unit) if unit not in ('', '1') else ''}: {d}/{total}"
+                     for v, d in zip(values, done)]
+            if len(cells) > 12:
+                cells = cells[:6] + ["..."] + cells[-5:]
+            lines.append(f"  {name}: " + ", ".join(cells))
+        failures = list(self.group.attrs.get("failures", []))
+        if failures:
+            lines.append(f"  failed samples ({len(failures)}), index = "
+                         f"({', '.join(SWEEP_DIMS)}):")
+            for f in failures[:max_failures]:
+                lines.append(f"    {tuple(f['index'])}: {f['reason']}")
+            if len(failures) > max_failures:
+                lines.append(f"    ... and {len(failures) - max_failures} more")
+        return "\n".join(lines)
+
+    # ------------------------------------------------------------------ writing
+    def _array(self, name: str):
+        """Array handle, opened once (looking it up in the group rereads its metadata)."""
+        cache = self.__dict__.setdefault("_arrays", {})
+        if name not in cache:
+            cache[name] = self.group[name]
+        return cache[name]
+
+    def write_block(self, key: tuple[int, int, int], realisations: list[int],
+                    results: list["RealisationSamples"]) -> None:
+        """Write one finished task: the given realisations of the block starting at ``key[0]``.
+
+        Whole chunks are written (one per array); samples of the block that were not
+        recomputed keep their stored values. Status goes last, so a kill leaves the block
+        missing, never half-written.
+        """
+        r0, g, s = key
+        r1 = min(r0 + self.block, self.shape[0])
+        rows = [r - r0 for r in realisations]
+        names = ("transmission", "modes", "measurements", "status")  # RealisationSamples fields
+        if len(rows) == r1 - r0:
+            data = {n: np.stack([getattr(res, n) for res in results]) for n in names}
+        else:  # part of the block is already stored: merge, do not overwrite it
+            data = {n: self._array(n)[r0:r1, g, s] for n in names}
+            for k, res in zip(rows, results):
+                for n in names:
+                    data[n][k] = getattr(res, n)
+        for n in names[:-1]:
+            self._array(n)[r0:r1, g, s] = data[n]
+        failures = [{"index": [r, g, s, *idx], "reason": why}
+                    for r, res in zip(realisations, results) for idx, why in res.failures]
+        if failures:
+            self.group.attrs["failures"] = list(self.group.attrs.get("failures", [])) + failures
+        self._array("status")[r0:r1, g, s] = data["status"]
+
+    def finish_session(self, summary: dict) -> None:
+        sessions = list(self.group.attrs.get("sessions", []))
+        if sessions:
+            sessions[-1].update({"finished": utc_now(), **summary})
+        self.group.attrs["sessions"] = sessions
+
+
+def block_size(cfg: SweepConfig, n_workers: int = 1) -> int:
+    """Realisations per block (one task, one chunk): enough for ``execution.batch`` samples
+    (default 8), so a sweep of one point per realisation does not pay the per-task overhead
+    (scheduling, one chunk write per array) for every sample -- but small enough to leave
+    about four tasks per worker for load balance. An explicit ``batch`` is taken as given."""
+    points = int(np.prod([len(cfg.axes[k]) for k in ("b_perp", "gate_voltage", "energy")]))
+    block = -(-(cfg.execution.batch or 8) // points)
+    if not cfg.execution.batch:
+        tasks_per_block = len(cfg.axes["geometry"]) * len(cfg.axes["disorder_strength"])
+        balance = cfg.run.realisations * tasks_per_block // (4 * max(n_workers, 1))
+        block = min(block, max(1, balance))
+    return max(1, min(cfg.run.realisations, block))
+
+
+@dataclass
+class RealisationSamples:
+    """The samples of one realisation at one geometry and strength, at every (field, gate,
+    energy) point: what a worker ships back to the writer (small arrays)."""
+
+    transmission: np.ndarray  # (nB, nV, nE, n, n)
+    modes: np.ndarray  # (nB, nV, nE, n)
+    measurements: np.ndarray  # (nB, nV, nE, m)
+    status: np.ndarray  # (nB, nV, nE) int8
+    failures: list  # [((b, v, e), reason)]
+    seconds: float = 0.0
+
+
+_SEGMENT_POOLS_FORMAT = "helisweep-segments/1"
+
+
+@dataclass
+class SegmentPoolStore:
+    """The ``segments`` sub-group of a run's sample store, where the long-edge stage keeps
+    its pools of disordered segments (xarray's reader of the samples ignores it).
+
+    The group records the hash of what determines the pools (``segments_hash``); pools of a
+    different model are refused, or moved aside (``segments-replaced-<time>`` inside the
+    store, never deleted) when starting afresh. Each pool is a sub-group of :attr:`group`,
+    written and read by :mod:`pipeline.longedges.storage`.
+    """
+
+    path: Path
+    group: zarr.Group
+
+    #: Name of the sub-group in the sample store.
+    GROUP = "segments"
+
+    @classmethod
+    def open(cls, store_path: str | Path, digest: str, *, fresh: bool = False,
+             config_text: str = "") -> "SegmentPoolStore":
+        """Open (or create) the pools group of the sample store at ``store_path``.
+
+        Parameters
+        ----------
+        store_path : str or Path
+            The run's sample store (``<run>/samples.zarr``); created as a bare group when
+            it does not exist yet.
+        digest : str
+            Hash of what determines the pools.
+        fresh : bool, optional
+            Move a group of a different hash aside instead of refusing it.
+        config_text : str, optional
+            The configuration's text, kept in the group's attributes.
+
+        Returns
+        -------
+        SegmentPoolStore
+
+        Raises
+        ------
+        StoreError
+            The group holds pools of a different hash and ``fresh`` is not set.
+        """
+        root_path = Path(store_path)
+        path = root_path / cls.GROUP
+        if path.exists():
+            old = zarr.open_group(str(path), mode="r").attrs.get("segments_hash")
+            if old != digest:
+                if not fresh:
+                    raise StoreError(
+                        f"{str(path)!r} holds segment pools of a different model (hash "
+                        f"{str(old)[:12]} vs {digest[:12]}); choose another run directory or pass "
+                        f"--fresh to move it aside"
+                    )
+                shutil.move(str(path), str(root_path / f"segments-replaced-{file_stamp()}"))
+        root = zarr.open_group(str(root_path), mode="a")
+        group = root.require_group(cls.GROUP)
+        group.attrs.update(format=_SEGMENT_POOLS_FORMAT, segments_hash=digest,
+                           config_text=config_text)
+        return cls(path, group)
+
+    def __contains__(self, name: str) -> bool:
+        """Whether a pool of that name is stored."""
+        return name in self.group
