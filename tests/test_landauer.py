@@ -132,7 +132,7 @@ def test_von_klitzing_constant_in_ohm():
 
 
 @pytest.mark.parametrize(
-    "label, kind, terminals",
+    "label, kind, contacts",
     [
         ("R14,23", "R", ("1", "4", "2", "3")),
         ("G14", "G", ("1", "4")),
@@ -140,9 +140,9 @@ def test_von_klitzing_constant_in_ohm():
         ("G(L, R)", "G", ("L", "R")),
     ],
 )
-def test_parse_measurement(label, kind, terminals):
+def test_parse_measurement(label, kind, contacts):
     m = landauer.parse_measurement(label)
-    assert (m.kind, m.terminals) == (kind, terminals)
+    assert (m.kind, m.contacts) == (kind, contacts)
 
 
 @pytest.mark.parametrize("label", ["R14", "X14,23", "R1,23", "G1", "R(1,2)", ""])

@@ -74,7 +74,6 @@ _POINT_DIMS = ("disorder_strength", "b_perp", "gate_voltage", "energy")
 _COMPARABLE = 1.5
 
 
-
 # --------------------------------------------------------------------------- building blocks
 def normalised_transmission(samples, quantised: float, kind: str) -> np.ndarray:
     """Per-sample normalised transmission: x/q for conductances, q/x for resistances.

@@ -47,6 +47,7 @@ from pipeline.transport.solver import transmission_matrix
 
 __all__ = ['main']
 
+
 def _parse_params(items: list[str]) -> dict[str, float]:
     out = {}
     for item in items or []:

@@ -22,6 +22,7 @@ from pipeline.sweep.driver import run_in_allocation
 
 __all__ = ['add_slurm_script_command', 'add_cluster_options', 'cluster_overrides']
 
+
 # =========================================================================== command line
 def _add_resource_options(p: argparse.ArgumentParser) -> None:
     g = p.add_argument_group("Slurm resources (override the config's [cluster] and the site file)")

@@ -18,6 +18,7 @@ from pipeline.errors import GeometryError
 
 __all__ = ['two_terminal_strip', 'h_bar', 'hall_bar', 'TEMPLATES']
 
+
 def _length(name: str, value: Any) -> float:
     """A template length in nm: a positive finite number, or GeometryError."""
     try:

@@ -36,6 +36,7 @@ __all__ = ["BATCH_BYTES", "draw_sequences", "concatenated_conductance", "lstar_d
 #: ``batch_bytes`` argument of :func:`concatenated_conductance`).
 BATCH_BYTES = 256 * 2**20
 
+
 def _check_counts(n_segments_per_edge) -> np.ndarray:
     """The requested edge lengths in segments as distinct positive int64, else ModelError."""
     counts = np.asarray(list(n_segments_per_edge))

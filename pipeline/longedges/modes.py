@@ -307,8 +307,6 @@ def _mode_labels(wave: np.ndarray, sz: np.ndarray, y: np.ndarray) -> tuple[np.nd
     return np.sum(sz[:, None] * w, axis=0) / norm, np.sum(y[:, None] * w, axis=0) / norm
 
 
-
-
 class StripScatterer:
     """One finalized clean-lead strip of ``n_columns`` columns and its canonical-basis maps.
 
@@ -394,6 +392,7 @@ class StripScatterer:
             b.left_wave, b.left_momentum, n, *sets[1]["in"])
         self.r_out = eye_r if self.doped["R"] else _match(
             *sets[1]["out"], b.right_wave, b.right_momentum, n)
+
     def calibrate(self) -> None:
         """Check the conventions on the clean strip and remove the gauge phase (see module)."""
         s = self.solve(self.dsys.params(b_perp=self.b_perp))

@@ -278,7 +278,6 @@ class SegmentSet:
         }
 
 
-
 def segment_smatrices(
     material: BHZParameters,
     a: float,

@@ -205,9 +205,9 @@ def _measurement_phrase(label: str) -> str:
     m = parse_measurement(label)
     if m.kind == "G":
         return (f"{label}, the two-terminal conductance between contacts "
-                f"{m.terminals[0]} and {m.terminals[1]} with all other contacts "
+                f"{m.contacts[0]} and {m.contacts[1]} with all other contacts "
                 f"floating (e^2/h)")
-    src, drn, vp, vm = m.terminals
+    src, drn, vp, vm = m.contacts
     return (f"{label}, the four-terminal resistance with current from {src} to "
             f"{drn} and voltage between {vp} and {vm} (h/e^2)")
 

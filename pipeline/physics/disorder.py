@@ -163,7 +163,6 @@ def hash_normal(
     return np.sqrt(-2.0 * np.log1p(-u_r)) * np.cos(2.0 * np.pi * u_phi)
 
 
-
 def _check_number(owner: str, name: str, value: Any, *, minimum: float | None = None,
                   strict: bool = False, unit: str = "", fix: str = "") -> float:
     """``value`` as a finite float, at least (or, with ``strict``, above) ``minimum``."""
@@ -735,7 +734,6 @@ def _depth_profile(length: float, a: float, xi: float, seed: int, stream: int,
 #: Any of the disorder terms.
 DisorderTerm = Union[Anderson, SmoothPotential, MagneticExchange, EdgeRoughness]
 _TERM_TYPES = (Anderson, SmoothPotential, MagneticExchange, EdgeRoughness)
-
 
 
 # --------------------------------------------------------------------------- the registry

@@ -19,6 +19,7 @@ from pipeline.errors import ModelError
 
 __all__ = ['BHZParameters', 'PRESETS', 'get_preset']
 
+
 @dataclass(frozen=True)
 class BHZParameters:
     """Parameters of the four-band Bernevig-Hughes-Zhang model."""

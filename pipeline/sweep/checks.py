@@ -27,6 +27,7 @@ from pipeline.transport.solver import open_modes
 
 __all__ = ['check_resources', 'validate_run']
 
+
 # --------------------------------------------------------------------------- checks before compute
 def validate_run(
     cfg: SweepConfig,
@@ -48,7 +49,7 @@ def validate_run(
         if names is not None and device.contact_names != names:
             raise HelisweepError(
                 f"the geometry sweep changes the contacts ({names} -> {device.contact_names}); "
-                f"a sweep must keep the same terminals"
+                f"a sweep must keep the same contacts"
             )
         names = device.contact_names
         for gate in cfg.gates.driven or []:

@@ -51,6 +51,7 @@ from pipeline.sweep.store import block_size
 
 __all__ = ['local_client', 'ClientSession', 'open_client', 'allocation_client', 'HOME_SITE_FILE', 'SETTING_NAMES', 'ClusterError', 'ClusterSettings', 'DEFAULTS', 'SITE_CONFIG_ENV', 'SharedPathWarning', 'batch_template_path', 'make_client', 'render_batch_script', 'resolve_cluster_settings', 'site_defaults_path', 'slurm_cluster', 'slurm_cluster_options', 'submit_batch_script']
 
+
 # --------------------------------------------------------------------------- driver
 def local_client(workers: int = 0):
     """A Dask client on a LocalCluster: one single-threaded process per core.
@@ -85,8 +86,6 @@ _MEMORY_PER_CORE_GB = 2
 
 #: tasks kept in flight per worker (as in the engine's default window)
 _TASKS_PER_WORKER = 4
-
-
 
 
 # =========================================================================== settings

@@ -1,21 +1,12 @@
-"""Execution: spread a sweep's disorder realisations over Dask workers and store the samples.
+"""The driver: spread a sweep's blocks over Dask workers and store their samples.
 
-Work unit (a *task*): one disorder realisation at one geometry and one disorder strength,
-solved at every (field, gate voltage, energy) point of the sweep. The disorder of a sample is
-a function of (root seed, realisation index, lattice site) only (see
-:mod:`pipeline.physics.disorder`), so it is the same fixed sample across energy, gate and field --
-as in a real device swept in gate voltage -- and the numbers do not depend on task order,
-batching or worker count.
-
-Each worker process keeps what is expensive to make and independent of the realisation:
-
-* the finalized Kwant system of each geometry (built once per worker);
-* lead modes per (geometry, energy, field) via Kwant's ``precalculate`` (leads are clean and
-  ungated, so a gate sweep needs them only once per energy).
-
-Workers return small arrays; the driver alone writes them to the Zarr store as tasks
-finish, so Zarr writes stay off the workers' critical path and there is a single writer.
-At most a bounded window of tasks is in flight, which also bounds what a killed run loses.
+A *task* is one block of realisations at one geometry and disorder strength, every
+realisation solved at every (field, gate voltage, energy) point (:mod:`pipeline.sweep.tasks`).
+The driver refuses bad input before any compute (:mod:`pipeline.sweep.checks`), opens or
+resumes the store, keeps a bounded window of tasks in flight and writes each block as it
+finishes: workers return small arrays and the driver is the store's single writer, so Zarr
+writes stay off the workers' critical path and a killed run loses at most the blocks in
+flight. The numbers do not depend on task order, batching or worker count.
 """
 
 from __future__ import annotations
@@ -38,6 +29,7 @@ from pipeline.sweep.tasks import run_block
 from pipeline.transport.environment import describe
 
 __all__ = ['run_sweep', 'run_on_cluster', 'run_in_allocation']
+
 
 @dataclass
 class _Progress:

@@ -22,6 +22,7 @@ from pipeline.transport.landauer import helical_ring_transmissions, parse_measur
 
 __all__ = ['device_for', 'quantised_values', 'uses_spin_blocks', 'disorder_terms', 'gate_potentials']
 
+
 # --------------------------------------------------------------------------- devices & systems
 def device_for(cfg: SweepConfig, geometry_index: int):
     """The device at one point of the geometry axis (a template or a geometry file)."""

@@ -86,7 +86,7 @@ def _reduced_solve(G: np.ndarray, source: int, drain: int) -> np.ndarray:
     if source == drain:
         raise TransportError(
             f"source and drain are the same terminal ({source + 1}); a current needs two "
-            f"different terminals"
+            f"different contacts"
         )
     keep = [t for t in range(n) if t != drain]
     Gr = G[..., keep, :][..., :, keep]
@@ -108,8 +108,8 @@ def _reduced_solve(G: np.ndarray, source: int, drain: int) -> np.ndarray:
 def _check_terminal(t: int, n: int, role: str) -> None:
     if not (0 <= int(t) < n):
         raise TransportError(
-            f"{role} terminal index {t!r} is out of range for a device with {n} terminals "
-            f"(valid: 0..{n - 1}, i.e. terminals 1..{n})"
+            f"{role} contact index {t!r} is out of range for a device with {n} contacts "
+            f"(valid: 0..{n - 1}, i.e. contacts 1..{n})"
         )
 
 
@@ -119,7 +119,7 @@ def four_terminal_resistance(
     """R_{source drain, v_plus v_minus} in h/e^2 (0-based terminal indices).
 
     Current enters at ``source`` and leaves at ``drain``; the voltage is
-    ``V[v_plus] - V[v_minus]``; all terminals other than source and drain are floating probes.
+    ``V[v_plus] - V[v_minus]``; all contacts other than source and drain are floating probes.
     """
     G = conductance_matrix(T)
     n = G.shape[-1]
@@ -130,7 +130,7 @@ def four_terminal_resistance(
 
 
 def two_terminal_conductance(T: np.ndarray, source: int, drain: int) -> np.ndarray:
-    """Two-terminal conductance (e^2/h) between two terminals, the others floating."""
+    """Two-terminal conductance (e^2/h) between two contacts, the others floating."""
     return 1.0 / four_terminal_resistance(T, source, drain, source, drain)
 
 
@@ -191,19 +191,19 @@ class Measurement:
         The name as written, e.g. ``"R14,23"`` or ``"G14"``.
     kind:
         ``"R"`` for a four-terminal resistance (h/e^2), ``"G"`` for a two-terminal
-        conductance (e^2/h) with the other terminals floating.
-    terminals:
+        conductance (e^2/h) with the other contacts floating.
+    contacts:
         Contact names: (source, drain, v_plus, v_minus) for ``R``; (source, drain) for ``G``.
     """
 
     label: str
     kind: str
-    terminals: tuple[str, ...]
+    contacts: tuple[str, ...]
 
     def indices(self, contact_names: tuple[str, ...]) -> tuple[int, ...]:
-        """0-based terminal indices of this measurement on a device with these contacts."""
+        """0-based contact indices of this measurement on a device with these contacts."""
         out = []
-        for name in self.terminals:
+        for name in self.contacts:
             if name not in contact_names:
                 raise TransportError(
                     f"measurement {self.label!r} names contact {name!r}, which the device does "
@@ -232,9 +232,9 @@ def parse_measurement(label: str) -> Measurement:
     """Parse ``"R14,23"`` / ``"G14"`` (single-character contact names) or the explicit
     forms ``"R(src,drn;v+,v-)"`` / ``"G(src,drn)"`` for longer names.
 
-    >>> parse_measurement("R14,23").terminals
+    >>> parse_measurement("R14,23").contacts
     ('1', '4', '2', '3')
-    >>> parse_measurement("G(left,right)").terminals
+    >>> parse_measurement("G(left,right)").contacts
     ('left', 'right')
     """
     text = label.strip()
