@@ -38,6 +38,7 @@ def fingerprints(tmp_path_factory, dask_clients):
 
 
 @pytest.mark.slow
+@pytest.mark.filterwarnings("ignore:'\\[measure\\] report' is deprecated")  # the cases use the old key on purpose
 @pytest.mark.parametrize("case", sorted(fingerprint.CASES))
 def test_store_and_summary_identical_to_reference(fingerprints, case):
     reference = json.loads(fingerprint.REFERENCE.read_text())[case]

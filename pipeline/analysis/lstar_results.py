@@ -31,6 +31,7 @@ from typing import Any
 import numpy as np
 
 from pipeline.errors import LStarError
+from pipeline.jsonsafe import json_safe
 
 __all__ = ['MODEL_NOTE', 'LSTAR_SCHEMA', 'LENGTH_SWEEP', 'concatenated_method', 'Crossing',
            'FitResult', 'LStarResult', 'LStarTable', 'lstar_results', 'lstar_document',
@@ -135,7 +136,7 @@ class FitResult:
         dict
             One key per attribute; :meth:`from_dict` reads it back.
         """
-        return _json_safe({f.name: getattr(self, f.name) for f in fields(self)})
+        return json_safe({f.name: getattr(self, f.name) for f in fields(self)})
 
     @classmethod
     def from_dict(cls, data: Mapping) -> FitResult:
@@ -253,7 +254,7 @@ class LStarResult:
         d["incoherent"] = self.incoherent.to_dict()
         d["coherent"] = self.coherent.to_dict()
         d["flags"] = list(self.flags)
-        return _json_safe(d)
+        return json_safe(d)
 
     @classmethod
     def from_dict(cls, data: Mapping) -> LStarResult:
@@ -354,7 +355,7 @@ class LStarTable:
         """
         return {"measurement": self.measurement,
                 "results": [r.to_dict() for r in self.results],
-                "skipped": [{"point": _json_safe({str(k): v for k, v in p}), "reason": why}
+                "skipped": [{"point": json_safe({str(k): v for k, v in p}), "reason": why}
                             for p, why in self.skipped]}
 
     @classmethod
@@ -402,20 +403,6 @@ class LStarTable:
 
 
 # --------------------------------------------------------------------------- plain data
-def _json_safe(value):
-    if isinstance(value, dict):
-        return {str(k): _json_safe(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_json_safe(v) for v in value]
-    if isinstance(value, (bool, np.bool_)):
-        return bool(value)
-    if isinstance(value, (int, np.integer)):
-        return int(value)
-    if isinstance(value, (float, np.floating)):
-        return float(value) if math.isfinite(value) else None
-    return value
-
-
 def _float(value) -> float:
     return math.nan if value is None else float(value)
 
@@ -561,7 +548,7 @@ def lstar_document(obj) -> dict:
     _collect(obj, results, skipped)
     return {"schema": LSTAR_SCHEMA, "note": MODEL_NOTE,
             "results": [r.to_dict() for r in results],
-            "skipped": [{"measurement": m, "point": _json_safe(dict(p)), "reason": why}
+            "skipped": [{"measurement": m, "point": json_safe(dict(p)), "reason": why}
                         for m, p, why in skipped]}
 
 

@@ -15,7 +15,7 @@ import numpy as np
 import xarray as xr
 
 from pipeline.errors import AggregateError, HelisweepError, SummaryWarning
-from pipeline.sweep.config import parse_config
+from pipeline.sweep.config import parse_stored_config
 from pipeline.sweep.runmodel import quantised_values
 from pipeline.sweep.store import SampleStore
 
@@ -160,7 +160,7 @@ def ideal_values(
         )
         return out
     try:
-        cfg = parse_config(text, source="<store config_text>", base_dir=config_dir or ".")
+        cfg = parse_stored_config(text, source="<store config_text>", base_dir=config_dir or ".")
         per_geo = [quantised_values(cfg, g) for g in range(n_geo)]
     except HelisweepError as exc:
         warnings.warn(

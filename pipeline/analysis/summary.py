@@ -63,6 +63,7 @@ from pipeline.analysis.statistics import (
 )
 from pipeline.constants import H_OVER_E2_OHM
 from pipeline.errors import AggregateError, SummaryWarning, TransportError
+from pipeline.jsonsafe import json_safe
 from pipeline.sweep.store import SampleStatus
 from pipeline.timestamps import utc_now
 from pipeline.transport.landauer import Measurement, parse_measurement
@@ -500,7 +501,7 @@ def _attributes(samples: _Samples, settings: _Settings, counts: _Counts, plans: 
         "config_hash": str(ds.attrs.get("config_hash", "")),
         "root_seed": int(ds.attrs.get("root_seed", -1)),
         "config_text": str(ds.attrs.get("config_text", "")),
-        "store_sessions": json.dumps(_jsonable(ds.attrs.get("sessions", [])), sort_keys=True),
+        "store_sessions": json.dumps(json_safe(ds.attrs.get("sessions", [])), sort_keys=True),
         "n_realisations_requested": int(ds.sizes["realisation"]),
         "n_samples_done": counts.done,
         "n_samples_failed": counts.failed,
@@ -539,25 +540,7 @@ def _netcdf_attr(value):
     if isinstance(value, np.ndarray) and value.dtype.kind in "iuf" and value.size > 1:
         return value
     # lists (even of numbers) become JSON text: a one-element array would read back as a scalar
-    return json.dumps(_jsonable(value), sort_keys=True)
-
-
-def _jsonable(value):
-    if isinstance(value, dict):
-        return {str(k): _jsonable(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_jsonable(v) for v in value]
-    if isinstance(value, np.ndarray):
-        return _jsonable(value.tolist())
-    if isinstance(value, (np.integer,)):
-        return int(value)
-    if isinstance(value, (np.floating, float)):
-        return float(value) if math.isfinite(value) else None
-    if isinstance(value, (np.bool_, bool)):
-        return bool(value)
-    if isinstance(value, (str, int)) or value is None:
-        return value
-    return str(value)
+    return json.dumps(json_safe(value), sort_keys=True)
 
 
 def _plain_strings(values) -> np.ndarray:

@@ -50,8 +50,8 @@ from pipeline.analysis.summary import summarize
 from pipeline.constants import H_OVER_E2_OHM
 from pipeline.device.drawing import OKABE_ITO, plot_device
 from pipeline.errors import HelisweepError
-from pipeline.output.jsonsafe import json_safe
-from pipeline.sweep.config import AXES, SweepConfig, parse_config
+from pipeline.jsonsafe import json_safe
+from pipeline.sweep.config import AXES, SweepConfig, parse_stored_config
 from pipeline.sweep.probe import CurrentMap, current_map
 from pipeline.sweep.runmodel import device_for
 from pipeline.sweep.store import SampleStatus
@@ -143,7 +143,7 @@ def _config_from_store(attrs: Mapping, store_path: Path) -> SweepConfig:
     last: Exception | None = None
     for base in candidates:
         try:
-            return parse_config(text, source=f"{store_path} (stored config)", base_dir=base)
+            return parse_stored_config(text, source=f"{store_path} (stored config)", base_dir=base)
         except HelisweepError as exc:
             last = exc
             if "does not exist" not in str(exc):

@@ -44,8 +44,8 @@ from pipeline.analysis.lstar import lstar_results as lstar_results_of
 from pipeline.analysis.lstar import save_lstar
 from pipeline.analysis.summary import save_summary
 from pipeline.errors import ExportError
+from pipeline.jsonsafe import json_safe
 from pipeline.output.figures import RunData, load_run, make_figures
-from pipeline.output.jsonsafe import json_safe
 from pipeline.output.methods import methods_text, store_facts
 from pipeline.sweep.config import AXES
 from pipeline.timestamps import utc_now

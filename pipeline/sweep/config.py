@@ -28,7 +28,7 @@ from pipeline.physics.disorder import DISORDER_KINDS
 from pipeline.physics.materials import BHZParameters, get_preset
 from pipeline.transport.landauer import parse_measurement
 
-__all__ = ['SweepConfig', 'load_config', 'parse_config', 'config_hash', 'AXES']
+__all__ = ['SweepConfig', 'load_config', 'parse_config', 'parse_stored_config', 'config_hash', 'AXES']
 
 #: sweep axes in storage order (after "realisation"), with their units
 AXES: dict[str, str] = {
@@ -423,6 +423,14 @@ def parse_config(text: str, *, source: str = "<config>", base_dir: str | Path = 
         raise _translate(exc, source) from None
     _check_cross(cfg, source)
     return cfg
+
+
+def parse_stored_config(text: str, *, source: str, base_dir: str | Path = ".") -> SweepConfig:
+    """Validate the config text a store recorded; deprecated spellings pass silently there
+    (the text is a record of a past run, not the file the user is editing)."""
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", ConfigWarning)
+        return parse_config(text, source=source, base_dir=base_dir)
 
 
 def load_config(path: str | Path) -> SweepConfig:

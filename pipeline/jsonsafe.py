@@ -1,10 +1,10 @@
-"""JSON-safe conversion of the values the output stage writes (figure side files, package JSON)."""
+"""The one JSON-safe conversion of the package (L* files, figure side files, package JSON,
+summary attributes written as JSON text)."""
 
 from __future__ import annotations
 
 import math
 from collections.abc import Mapping
-from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -17,7 +17,7 @@ def json_safe(obj: Any) -> Any:
 
     Mappings become dicts with string keys, tuples, lists and arrays become lists, NumPy
     scalars become Python numbers, non-finite floats become ``None`` (JSON has no NaN) and
-    paths become strings; anything else is returned as it is.
+    paths and any other object become strings.
 
     Parameters
     ----------
@@ -40,6 +40,6 @@ def json_safe(obj: Any) -> Any:
     if isinstance(obj, (float, np.floating)):
         f = float(obj)
         return f if math.isfinite(f) else None
-    if isinstance(obj, Path):
-        return str(obj)
-    return obj
+    if isinstance(obj, (str, int)) or obj is None:
+        return obj
+    return str(obj)
