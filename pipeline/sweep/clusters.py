@@ -164,29 +164,25 @@ class ClusterSettings:
         return "\n".join(lines)
 
 
-class _Bad(Exception):
-    """Raised by a validator: the text says what is wrong and how to fix it."""
-
-
 def _walltime_seconds(text: str) -> int:
     m = re.fullmatch(r"(?:(\d+)-)?(\d{1,3}):([0-5]\d):([0-5]\d)", text)
     if m is None:
-        raise _Bad('is not a walltime; give "HH:MM:SS" or "D-HH:MM:SS", e.g. "02:00:00"')
+        raise ConfigError('is not a walltime; give "HH:MM:SS" or "D-HH:MM:SS", e.g. "02:00:00"')
     days, h, mi, s = (int(x) if x else 0 for x in m.groups())
     return ((days * 24 + h) * 60 + mi) * 60 + s
 
 
 def _check_text(value: Any) -> str:
     if not isinstance(value, str):
-        raise _Bad(f"must be a string, not {type(value).__name__}")
+        raise ConfigError(f"must be a string, not {type(value).__name__}")
     if any(c in value for c in "\n\r\0"):
-        raise _Bad("contains a newline or NUL; give it on one line")
+        raise ConfigError("contains a newline or NUL; give it on one line")
     return value
 
 
 def _v_kind(v):
     if v not in ("local", "slurm"):
-        raise _Bad('must be "local" or "slurm"')
+        raise ConfigError('must be "local" or "slurm"')
     return v
 
 
@@ -196,9 +192,9 @@ def _v_slurm_name(v):
         return None
     v = _check_text(v).strip()
     if not v:
-        raise _Bad("is empty; omit it to use the cluster's default")
+        raise ConfigError("is empty; omit it to use the cluster's default")
     if re.search(r"\s", v) or v.startswith("-"):
-        raise _Bad("must be one word without spaces that does not start with '-' "
+        raise ConfigError("must be one word without spaces that does not start with '-' "
                    "(as `sinfo -s` or `sacctmgr show assoc` list them)")
     return v
 
@@ -206,7 +202,7 @@ def _v_slurm_name(v):
 def _v_walltime(v):
     v = _check_text(v).strip()
     if _walltime_seconds(v) == 0:
-        raise _Bad('is zero; give a positive walltime, e.g. "01:00:00"')
+        raise ConfigError('is zero; give a positive walltime, e.g. "01:00:00"')
     return v
 
 
@@ -218,7 +214,7 @@ def _v_memory(v):
         return None
     v = _check_text(v).strip()
     if _MEMORY_RE.fullmatch(v) is None:
-        raise _Bad('is not a memory size; give a number and a unit, e.g. "4GB" or "3500MiB"')
+        raise ConfigError('is not a memory size; give a number and a unit, e.g. "4GB" or "3500MiB"')
     return v.replace(" ", "")
 
 
@@ -227,32 +223,32 @@ def _v_int(lo: int, hi: int, optional: bool = False) -> Callable:
         if v is None and optional:
             return None
         if isinstance(v, bool) or not isinstance(v, int):
-            raise _Bad(f"must be a whole number from {lo} to {hi}")
+            raise ConfigError(f"must be a whole number from {lo} to {hi}")
         if not lo <= v <= hi:
-            raise _Bad(f"is outside {lo}..{hi}")
+            raise ConfigError(f"is outside {lo}..{hi}")
         return v
     return check
 
 
 def _v_directives(v):
     if isinstance(v, str) or not isinstance(v, (list, tuple)):
-        raise _Bad('must be a list of strings, e.g. ["--qos=long", "--constraint=avx2"]')
+        raise ConfigError('must be a list of strings, e.g. ["--qos=long", "--constraint=avx2"]')
     out = []
     for item in v:
         try:
             item = _check_text(item).strip()
-        except _Bad as exc:
-            raise _Bad(f"item {item!r} {exc}") from None
+        except ConfigError as exc:
+            raise ConfigError(f"item {item!r} {exc}") from None
         if not item.startswith("--") or len(item) < 3:
-            raise _Bad(f"item {item!r} is not a long sbatch option; write each directive as "
+            raise ConfigError(f"item {item!r} is not a long sbatch option; write each directive as "
                        f"'--option' or '--option=value' (without '#SBATCH')")
         # sbatch reads a #SBATCH line with shell quoting and stops at a blank or a '#'
         try:
             words = shlex.split(item, comments=True)
         except ValueError as exc:
-            raise _Bad(f"item {item!r} has unbalanced quotes ({exc})") from None
+            raise ConfigError(f"item {item!r} has unbalanced quotes ({exc})") from None
         if len(words) != 1 or words != shlex.split(item):
-            raise _Bad(f"item {item!r} is not one option: sbatch would stop at the first blank "
+            raise ConfigError(f"item {item!r} is not one option: sbatch would stop at the first blank "
                        f"or '#'; quote such a value, e.g. --comment='two words'")
         out.append(item)
     return tuple(out)
@@ -263,7 +259,7 @@ def _v_interface(v):
         return None
     v = _check_text(v).strip()
     if not re.fullmatch(r"[A-Za-z0-9_.:@\-]+", v):
-        raise _Bad('is not a network interface name; give one as `ip link` lists it, '
+        raise ConfigError('is not a network interface name; give one as `ip link` lists it, '
                    'e.g. "ib0", "eth0" or "lo"')
     return v
 
@@ -271,26 +267,26 @@ def _v_interface(v):
 def _v_path(v):
     v = _check_text(v).strip()
     if not v:
-        raise _Bad("is empty; give a directory")
+        raise ConfigError("is empty; give a directory")
     return os.path.abspath(os.path.expanduser(v))
 
 
 def _v_python(v):
     v = _check_text(v).strip()
     if not v:
-        raise _Bad("is empty; give the Python executable on the compute nodes")
+        raise ConfigError("is empty; give the Python executable on the compute nodes")
     return v
 
 
 def _v_timeout(v):
     if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v) or v <= 0:
-        raise _Bad("must be a positive number of seconds, e.g. 600")
+        raise ConfigError("must be a positive number of seconds, e.g. 600")
     return float(v)
 
 
 def _v_bool(v):
     if not isinstance(v, bool):
-        raise _Bad("must be true or false")
+        raise ConfigError("must be true or false")
     return v
 
 
@@ -298,7 +294,7 @@ def _v_bool(v):
 class _Setting:
     #: packaged default
     default: Any
-    #: check and normalise a value from any layer (raises _Bad)
+    #: check and normalise a value from any layer (raises ConfigError with what is wrong; the caller adds where it came from)
     check: Callable[[Any], Any]
     #: how to write it on the command line (for fixes in messages)
     flag: str | None = None
@@ -445,7 +441,7 @@ def resolve_cluster_settings(cfg_cluster=None, overrides: Mapping[str, Any] | No
             origin, raw = scaling_owner, None
         try:
             values[key] = spec.check(raw)
-        except _Bad as exc:
+        except ConfigError as exc:
             flag = f" (command line {spec.flag})" if spec.flag and origin == "command line" else ""
             raise ConfigError(f"cluster setting {key!r} = {raw!r} from {origin}{flag} {exc}") from None
         sources.append((key, origin))
@@ -842,8 +838,8 @@ def render_batch_script(cfg_path: str | Path, settings: ClusterSettings, *,
     try:
         _check_text(job_name)
         if not job_name.strip():
-            raise _Bad("is empty")
-    except _Bad as exc:
+            raise ConfigError("is empty")
+    except ConfigError as exc:
         raise ConfigError(f"job name {job_name!r} {exc}; give a short name on one line") from None
     workdir = os.getcwd()
     store = Path(store_path) if store_path is not None else cfg.run_dir / "samples.zarr"
