@@ -189,7 +189,7 @@ def summarize(
 
     Warns
     -----
-    UserWarning
+    SummaryWarning
         When samples are missing or failed (the statistics then rest on fewer samples; see
         ``n_samples``), and for thermal smearing that is skipped or truncated at the grid ends.
     """
