@@ -306,8 +306,8 @@ def test_config_keys_count_only_when_written(tmp_path, tiny_config_text, monkeyp
     assert s.kind == "local" and s.extra_directives == ()
 
 
-class _RecordingCluster:
-    """Stands in for a SLURMCluster: records the bounds ``make_client`` gives ``adapt``."""
+class _BoundsLogCluster:
+    """Stands in for a SLURMCluster: notes the bounds ``make_client`` gives ``adapt``."""
 
     def __init__(self):
         self.bounds = None
@@ -321,7 +321,7 @@ class _RecordingCluster:
 
 
 class _IdleClient:
-    """Stands in for a Dask client of the recording cluster (nothing to connect to)."""
+    """Stands in for a Dask client of that stand-in cluster (nothing to connect to)."""
 
     def __init__(self, cluster):
         self.cluster = cluster
@@ -333,7 +333,7 @@ class _IdleClient:
 def _adapt_bounds(settings, n_workers_hint, monkeypatch):
     """(minimum_jobs, maximum_jobs) with which make_client scales a Slurm cluster of these
     settings (whatever their kind)."""
-    cluster = _RecordingCluster()
+    cluster = _BoundsLogCluster()
     monkeypatch.setattr(cl, "slurm_cluster", lambda settings, job_name: cluster)
     monkeypatch.setattr("dask.distributed.Client", _IdleClient)
     _, close = make_client(dataclasses.replace(settings, kind="slurm"),
