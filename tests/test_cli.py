@@ -58,3 +58,17 @@ def test_report_refuses_workers_without_run(tmp_path, tiny_config_text, capsys):
     config.write_text(tiny_config_text())
     assert main(["report", str(config), "--workers", "2"]) == 2
     assert "only with --run" in capsys.readouterr().err
+
+
+@pytest.mark.slow
+def test_report_without_run_does_not_compute_segment_pools(tmp_path, tiny_config_text,
+                                                          dask_clients, capsys):
+    text = tiny_config_text(realisations=2)
+    store = tmp_path / "run" / "samples.zarr"
+    run_sweep(parse_config(text), client=dask_clients[2], store_path=store, progress=False)
+    config = tmp_path / "long.toml"  # the [concatenation] table does not change the samples
+    config.write_text(text + "\n[concatenation]\nsegment_length = 60.0\nsegments = 4\n"
+                             "lengths = [60.0, 120.0]\nsequences = 10\n")
+    assert main(["report", str(config), "--quiet"]) == 2
+    assert "--run" in capsys.readouterr().err
+    assert not (store / "segments").exists()

@@ -12,7 +12,7 @@ from typing import Any
 import numpy as np
 from shapely.geometry import Polygon
 
-from pipeline.device.outline import Device, _polygons_of
+from pipeline.device.outline import Device, polygon_pieces
 from pipeline.errors import GeometryError
 
 __all__ = ['plot_device', 'OKABE_ITO']
@@ -62,7 +62,7 @@ def _draw_gates(ax: Any, device: Device) -> None:
 
     for k, gate in enumerate(device.gates):
         colour = OKABE_ITO[(len(OKABE_ITO) - 3 - k) % len(OKABE_ITO)]
-        for poly in _polygons_of(gate.region):
+        for poly in polygon_pieces(gate.region):
             ax.add_patch(
                 PathPatch(
                     _polygon_path(poly),

@@ -32,7 +32,7 @@ from shapely.validation import explain_validity
 
 from pipeline.errors import GeometryError
 
-__all__ = ['perimeter_order', 'Contact', 'Gate', 'Device', 'validate_device', 'MAX_COORDINATE_NM']
+__all__ = ['perimeter_order', 'polygon_pieces', 'Contact', 'Gate', 'Device', 'validate_device', 'MAX_COORDINATE_NM']
 
 #: Largest coordinate magnitude accepted (1 mm): anything beyond is almost surely a unit mix-up.
 MAX_COORDINATE_NM: float = 1e6
@@ -274,8 +274,9 @@ def _rect_beside(segment: LineString, direction: tuple[int, int], depth: float) 
     return shapely.box(min(xs), min(ys), max(xs), max(ys))
 
 
-def _polygons_of(geom: Any) -> list[Polygon]:
-    """Non-empty polygon pieces of a (multi)polygon or collection."""
+def polygon_pieces(geom: Any) -> list[Polygon]:
+    """The non-empty polygons of a polygon, multipolygon or geometry collection (any depth);
+    lines and points are dropped. One helper for the readers, the checks and the drawings."""
     if geom is None or geom.is_empty:
         return []
     if isinstance(geom, Polygon):
@@ -283,7 +284,7 @@ def _polygons_of(geom: Any) -> list[Polygon]:
     if hasattr(geom, "geoms"):
         out: list[Polygon] = []
         for g in geom.geoms:
-            out.extend(_polygons_of(g))
+            out.extend(polygon_pieces(g))
         return out
     return []
 
@@ -311,7 +312,7 @@ def _all_coordinates(device: Device) -> list[tuple[str, np.ndarray]]:
         if isinstance(c.segment, LineString):
             parts.append((f"contact {c.name!r}", np.asarray(c.segment.coords, dtype=float)))
     for g in device.gates:
-        for poly in _polygons_of(g.region):
+        for poly in polygon_pieces(g.region):
             parts.append((f"gate {g.name!r}", np.asarray(poly.exterior.coords, dtype=float)))
     # Drop any z column: only the plane matters for these checks.
     return [(label, arr.reshape(len(arr), -1)[:, :2]) for label, arr in parts]
@@ -549,7 +550,7 @@ def _check_contact(device: Device, contact: Contact, a: float, tol: float) -> No
 def _check_lead_clear(device: Device, contact: Contact, lead: Polygon, tol: float) -> None:
     outline = device.outline
     # Keep only the areal part: the lead also touches the outline along the contact itself.
-    hit = shapely.union_all(_polygons_of(lead.intersection(outline)))
+    hit = shapely.union_all(polygon_pieces(lead.intersection(outline)))
     if hit.area <= tol * contact.width:
         return
     what = f"device {device.name!r}, contact {contact.name!r}"
@@ -636,7 +637,7 @@ def _check_necks(device: Device, a: float, min_neck_sites: float) -> None:
     outline = device.outline
     w = sites * a
     eroded = outline.buffer(-w / 2)
-    pieces = _polygons_of(eroded)
+    pieces = polygon_pieces(eroded)
     if not pieces:
         raise GeometryError(
             f"device {device.name!r} is nowhere wider than {w:g} nm ({sites:g} lattice "
@@ -648,7 +649,7 @@ def _check_necks(device: Device, a: float, min_neck_sites: float) -> None:
     # Opening (erode then dilate) removes exactly the parts narrower than w; the lost part that
     # touches two surviving pieces is the neck that splits them.
     grown = [p.buffer(w / 2, join_style="mitre") for p in pieces]
-    lost = _polygons_of(outline.difference(shapely.union_all(grown)))
+    lost = polygon_pieces(outline.difference(shapely.union_all(grown)))
     touch_tol = 1e-3 * a
     bridging = [piece for piece in lost if sum(piece.distance(g) <= touch_tol for g in grown) >= 2]
     where = max(bridging or lost, key=lambda p: p.area, default=None)

@@ -43,7 +43,7 @@ import shapely.wkt
 from shapely.geometry import LineString, Point, Polygon
 from shapely.validation import explain_validity
 
-from pipeline.device.outline import Contact, Device, Gate
+from pipeline.device.outline import Contact, Device, Gate, polygon_pieces
 from pipeline.errors import GeometryError
 
 __all__ = ['load_device', 'save_geojson', 'device_to_dict', 'device_from_dict', 'ROLES', 'UNITS', 'DEFAULT_LAYER_MAP', 'SUFFIXES']
@@ -630,7 +630,7 @@ def _load_gds(path: Path, layer_map: Mapping[str, Any] | None, cell_name: str | 
         return out
 
     merged = shapely.union_all(shapes("mesa"))
-    pieces = _pieces(merged)
+    pieces = polygon_pieces(merged)
     if len(pieces) != 1:
         centres = ", ".join(f"({p.centroid.x:.6g}, {p.centroid.y:.6g})" for p in pieces)
         raise GeometryError(
@@ -645,7 +645,7 @@ def _load_gds(path: Path, layer_map: Mapping[str, Any] | None, cell_name: str | 
 
     contacts: list[Contact] = []
     if "contact" in lm:
-        pads = _pieces(shapely.union_all(shapes("contact")))
+        pads = polygon_pieces(shapely.union_all(shapes("contact")))
         names = _label_names(pads, labels, lm["contact"][0], to_nm, "contact", where, "C", centre)
         for pad, pad_name in sorted(
             zip(pads, names, strict=True), key=lambda t: _natural_key(t[1])
@@ -653,21 +653,13 @@ def _load_gds(path: Path, layer_map: Mapping[str, Any] | None, cell_name: str | 
             contacts.append(Contact(pad_name, _pad_segment(outline, pad, tol, where, pad_name)))
     gates: list[Gate] = []
     if "gate" in lm:
-        regions = _pieces(shapely.union_all(shapes("gate")))
+        regions = polygon_pieces(shapely.union_all(shapes("gate")))
         names = _label_names(regions, labels, lm["gate"][0], to_nm, "gate", where, "G", centre)
         for region, gate_name in sorted(
             zip(regions, names, strict=True), key=lambda t: _natural_key(t[1])
         ):
             gates.append(Gate(gate_name, region))
     return Device(cell.name, outline, tuple(contacts), tuple(gates))
-
-
-def _pieces(geom: Any) -> list[Polygon]:
-    if geom is None or geom.is_empty:
-        return []
-    if isinstance(geom, Polygon):
-        return [geom]
-    return [g for g in getattr(geom, "geoms", []) if isinstance(g, Polygon) and not g.is_empty]
 
 
 def _label_names(

@@ -143,7 +143,7 @@ def run_concatenation(cfg: SweepConfig, run_dir: str | Path, *, client=None,
     run_dir.mkdir(parents=True, exist_ok=True)
     digest = _segments_hash(cfg)
     store = SegmentPoolStore.open(run_dir / "samples.zarr", digest, fresh=fresh,
-                                  config_text=cfg.source_text)
+                                  config_text=cfg.source_text, create=compute)
     axes = cfg.axes
     counts = [int(round(L / cc.segment_length)) for L in cc.lengths]
     datasets, lstars = [], []

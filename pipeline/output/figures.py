@@ -49,6 +49,7 @@ from pipeline.analysis.lstar_results import LStarResult, lstar_results
 from pipeline.analysis.summary import summarize
 from pipeline.constants import H_OVER_E2_OHM
 from pipeline.device.drawing import OKABE_ITO, plot_device
+from pipeline.device.outline import polygon_pieces
 from pipeline.errors import HelisweepError
 from pipeline.jsonsafe import json_safe
 from pipeline.sweep.config import AXES, SweepConfig, parse_stored_config
@@ -1004,12 +1005,6 @@ def figure_distribution(run: RunData, label: str, slug: str | None = None,
 
 
 # --------------------------------------------------------------------------- 4. device
-def _polygons(geom: Any) -> list:
-    if geom is None or geom.is_empty:
-        return []
-    return list(geom.geoms) if hasattr(geom, "geoms") else [geom]
-
-
 def _device_rows(device: Any, sites: np.ndarray, head: list) -> list[list]:
     """CSV rows of a drawn device: outline and hole vertices, contacts, gates and sites."""
     rows = []
@@ -1022,7 +1017,7 @@ def _device_rows(device: Any, sites: np.ndarray, head: list) -> list[list]:
         for k, (x, y) in enumerate(np.asarray(c.segment.coords)[:, :2]):
             rows.append(head + ["contact", c.name, k, x, y])
     for gate in device.gates:
-        for poly in _polygons(gate.region):
+        for poly in polygon_pieces(gate.region):
             for k, (x, y) in enumerate(np.asarray(poly.exterior.coords)[:, :2]):
                 rows.append(head + ["gate", gate.name, k, x, y])
     for k, (x, y) in enumerate(sites):

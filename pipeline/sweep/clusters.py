@@ -688,8 +688,6 @@ class ClientSession:
 
     #: the ``distributed.Client``
     client: Any
-    #: the resolved cluster settings it was made from
-    settings: ClusterSettings
     #: tasks to keep in flight (Slurm: enough for every worker the cluster may grow to;
     #: None: the driver's default for the workers present)
     max_in_flight: int | None = None
@@ -748,7 +746,7 @@ def open_client(cfg, overrides: Mapping[str, Any] | None = None, *, workers: int
             if fewest > 0:
                 _wait_for_workers(client, settings, 1)
             in_flight = _TASKS_PER_WORKER * most * settings.cores
-        yield ClientSession(client, settings, in_flight)
+        yield ClientSession(client, in_flight)
     finally:
         close()
 
@@ -962,7 +960,6 @@ def allocation_client(scheduler_file: str | Path, *, expected_workers: int = 1,
         n = len(client.scheduler_info().get("workers", {}))
         print(f"helisweep: {n} of {expected_workers} worker(s) connected; running the sweep",
               file=sys.stderr, flush=True)
-        settings = resolve_cluster_settings(None, {"kind": "slurm"})
-        yield ClientSession(client, settings, _TASKS_PER_WORKER * max(expected_workers, n, 1))
+        yield ClientSession(client, _TASKS_PER_WORKER * max(expected_workers, n, 1))
     finally:
         client.shutdown()

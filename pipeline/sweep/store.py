@@ -422,7 +422,7 @@ class SegmentPoolStore:
 
     @classmethod
     def open(cls, store_path: str | Path, digest: str, *, fresh: bool = False,
-             config_text: str = "") -> "SegmentPoolStore":
+             config_text: str = "", create: bool = True) -> "SegmentPoolStore":
         """Open (or create) the pools group of the sample store at ``store_path``.
 
         Parameters
@@ -436,6 +436,9 @@ class SegmentPoolStore:
             Move a group of a different hash aside instead of refusing it.
         config_text : str, optional
             The configuration's text, kept in the group's attributes.
+        create : bool, optional
+            Create the group if needed (default). False opens an existing group read-only
+            and refuses a missing one: for reading pools without computing any.
 
         Returns
         -------
@@ -451,13 +454,20 @@ class SegmentPoolStore:
         if path.exists():
             old = zarr.open_group(str(path), mode="r").attrs.get("segments_hash")
             if old != digest:
-                if not fresh:
+                if not (fresh and create):
                     raise StoreError(
                         f"{str(path)!r} holds segment pools of a different model (hash "
                         f"{str(old)[:12]} vs {digest[:12]}); choose another run directory or pass "
                         f"--fresh to move it aside"
                     )
                 shutil.move(str(path), str(root_path / f"segments-replaced-{file_stamp()}"))
+        if not create:
+            if not path.exists():
+                raise StoreError(
+                    f"no segment pools at {str(path)!r}; compute them with "
+                    f"`helisweep report CONFIG --run`"
+                )
+            return cls(path, zarr.open_group(str(path), mode="r"))
         root = zarr.open_group(str(root_path), mode="a")
         group = root.require_group(cls.GROUP)
         group.attrs.update(format=_SEGMENT_POOLS_FORMAT, segments_hash=digest,
