@@ -72,3 +72,19 @@ def test_report_without_run_does_not_compute_segment_pools(tmp_path, tiny_config
     assert main(["report", str(config), "--quiet"]) == 2
     assert "--run" in capsys.readouterr().err
     assert not (store / "segments").exists()
+
+
+def test_installed_command_runs(capsys):
+    """The ``helisweep`` console script the README uses resolves to the command's function."""
+    import subprocess
+    import sys
+    from importlib.metadata import entry_points
+    from pathlib import Path
+
+    (ep,) = entry_points(group="console_scripts", name="helisweep")
+    assert ep.load() is main
+    script = Path(sys.executable).with_name("helisweep")
+    if script.exists():  # installed into the interpreter's environment (the README's route)
+        out = subprocess.run([str(script), "--help"], capture_output=True, text=True, timeout=120)
+        assert out.returncode == 0, out.stderr
+        assert "report" in out.stdout
