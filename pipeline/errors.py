@@ -24,6 +24,7 @@ __all__ = [
     "ConfigWarning",
     "SummaryWarning",
     "ConcatenationWarning",
+    "NetworkWarning",
     "SharedPathWarning",
 ]
 
@@ -88,6 +89,11 @@ class SummaryWarning(HelisweepWarning):
 
 class ConcatenationWarning(HelisweepWarning):
     """A segment set or composition is outside the regime where it is accurate."""
+
+
+class NetworkWarning(HelisweepWarning):
+    """The edge-network model runs but with a caveat (e.g. a section modelled shorter or
+    longer than it is)."""
 
 
 class SharedPathWarning(HelisweepWarning):

@@ -33,7 +33,8 @@ import numpy as np
 from pipeline.errors import LStarError
 from pipeline.jsonsafe import json_safe
 
-__all__ = ['MODEL_NOTE', 'LSTAR_SCHEMA', 'LENGTH_SWEEP', 'concatenated_method', 'Crossing',
+__all__ = ['MODEL_NOTE', 'LSTAR_SCHEMA', 'LENGTH_SWEEP', 'concatenated_method', 'network_method',
+           'Crossing',
            'FitResult', 'LStarResult', 'LStarTable', 'lstar_results', 'lstar_document',
            'save_lstar', 'load_lstar']
 
@@ -66,6 +67,24 @@ def concatenated_method(mode: str) -> str:
         raise LStarError(f"composition mode {mode!r} is not one of {_CONCATENATION_MODES!r}; "
                          f"use the mode the edges were composed in")
     return f"concatenated, {mode}"
+
+
+def network_method(composition: str) -> str:
+    """The ``method`` of an L* from the helical-edge network model.
+
+    Parameters
+    ----------
+    composition : str
+        ``"coherent"`` or ``"incoherent"``: how segments are joined along an edge section.
+
+    Returns
+    -------
+    str
+        ``"edge network, coherent"`` or ``"edge network, incoherent"``.
+    """
+    if composition not in _CONCATENATION_MODES:
+        raise LStarError(f"composition {composition!r} is not one of {_CONCATENATION_MODES!r}")
+    return f"edge network, {composition}"
 
 
 # --------------------------------------------------------------------------- results

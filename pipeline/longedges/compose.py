@@ -30,7 +30,7 @@ from pipeline.longedges.pools import SegmentSet
 from pipeline.longedges.smatrix import ProbabilityMatrix, SMatrix, star_product
 from pipeline.physics.disorder import term_to_dict
 
-__all__ = ["BATCH_BYTES", "draw_sequences", "concatenated_conductance", "lstar_dataset"]
+__all__ = ["BATCH_BYTES", "draw_sequences", "compose_prefixes", "concatenated_conductance", "lstar_dataset"]
 
 #: Memory (bytes) one batch of sequences may use while composing (the default of the
 #: ``batch_bytes`` argument of :func:`concatenated_conductance`).
@@ -98,7 +98,7 @@ def draw_sequences(seed: int, n_sequences: int, n_max: int, pool: int) -> np.nda
     return np.minimum((u * pool).astype(np.int64), pool - 1)
 
 
-def _compose_prefixes(blocks: tuple, idx: np.ndarray, counts: np.ndarray, contacts) -> list:
+def compose_prefixes(blocks: tuple, idx: np.ndarray, counts: np.ndarray, contacts) -> list:
     """Composed chains of the first ``n`` segments of each row of ``idx``, for each count.
 
     ``blocks`` are the pool's (r, t, tp, rp) arrays (pool, m, m); the chain is built from
@@ -152,7 +152,7 @@ def _compose_all(segment_set, idx, counts, mode, pool_map=None, batch_bytes=BATC
         rows = idx[lo:lo + batch]
         if pool_map is not None:
             rows = pool_map[rows]
-        for i, res in enumerate(_compose_prefixes(blocks, rows, counts, contacts)):
+        for i, res in enumerate(compose_prefixes(blocks, rows, counts, contacts)):
             if coherent:
                 s = SMatrix(*res)
                 g[i, lo:lo + batch] = s.conductance()

@@ -45,7 +45,7 @@ from pipeline.system.mesh import mesh_device
 from pipeline.timestamps import utc_now
 
 __all__ = ["POOL_FORMAT", "SegmentSet", "segment_smatrices", "merge_segments", "buffer_mask",
-           "masked_disorder"]
+           "masked_disorder", "contact_sections", "QUARTER_TURN", "turned_onsite"]
 
 #: Format tag of a stored segment pool (see :mod:`pipeline.longedges.storage`).
 POOL_FORMAT = "helisweep-segments/1"
@@ -104,6 +104,36 @@ def masked_disorder(terms, mesh, device, *, seed, realisation, strength, clean):
     return pot, extra
 
 
+#: Basis change of a quarter turn of the device about z, on (E up, H up, E down, H down):
+#: ``U^dagger H_x U`` turns the BHZ hopping along +x into the one along +y, and it leaves the
+#: onsite terms of the material (including bulk-inversion asymmetry) unchanged. A device edge
+#: along y is therefore an edge along x whose other onsite terms are transformed by ``U``:
+#: an in-plane exchange then couples the E and H spins with opposite relative sign.
+QUARTER_TURN = np.diag([1.0, 1.0j, 1.0j, 1.0]).astype(complex)
+
+
+def turned_onsite(extra: np.ndarray | None, quarter_turns: int) -> np.ndarray | None:
+    """Onsite matrices (n, 4, 4) of a strip turned by ``quarter_turns`` x 90 degrees.
+
+    Parameters
+    ----------
+    extra : numpy.ndarray or None
+        Onsite matrices (exchange, disorder) of an x-directed strip.
+    quarter_turns : int
+        Number of quarter turns; only its parity matters (a half turn maps the lattice
+        model onto itself).
+
+    Returns
+    -------
+    numpy.ndarray or None
+        ``U^dagger extra U`` for an odd number of turns (see :data:`QUARTER_TURN`).
+    """
+    if extra is None or int(quarter_turns) % 2 == 0:
+        return extra
+    u = QUARTER_TURN
+    return u.conj().T @ extra @ u
+
+
 @dataclass(frozen=True, eq=False)
 class SegmentSet:
     """A pool of independent disordered segments, their S-matrices in one canonical basis.
@@ -140,6 +170,9 @@ class SegmentSet:
         ``1 / min Re lambda`` (nm) of the edge state (:func:`pipeline.physics.bhz.edge_decay_constants`).
     gauge_phase : float
         Gauge phase removed by the clean-strip calibration (radians; 0 without field).
+    quarter_turns : int
+        0: the segments are edges along x; 1: edges along y of the device, computed in the
+        x-directed strip with the onsite terms turned (:func:`turned_onsite`).
     """
 
     r: np.ndarray
@@ -165,6 +198,7 @@ class SegmentSet:
     evanescent_length: float = math.nan
     edge_decay_length: float = math.nan
     gauge_phase: float = 0.0
+    quarter_turns: int = 0
     created: str = field(default="", compare=False)
 
     def __post_init__(self) -> None:
@@ -241,7 +275,8 @@ class SegmentSet:
         potential : numpy.ndarray
             Scalar potential (meV), shape (n,), zero in the clean buffers.
         onsite_extra : numpy.ndarray or None
-            Exchange matrices (meV), shape (n, 4, 4), zero in the buffers, or None.
+            Exchange matrices (meV), shape (n, 4, 4), zero in the buffers, or None; turned
+            with the pool (:attr:`quarter_turns`).
         """
         device = two_terminal_strip(self.segment_length, self.width)
         mesh = mesh if mesh is not None else mesh_device(device, self.lattice_constant)
@@ -249,7 +284,7 @@ class SegmentSet:
             self.disorder, mesh, device, seed=self.seed,
             realisation=self.first_realisation + int(k), strength=self.strength,
             clean=buffer_mask(mesh.tags[:, 0], self.n_columns, self.buffer_columns))
-        return mesh.tags, pot, extra
+        return mesh.tags, pot, turned_onsite(extra, self.quarter_turns)
 
     def metadata(self) -> dict:
         """JSON-serialisable description (everything but the arrays)."""
@@ -271,6 +306,7 @@ class SegmentSet:
             "edge_decay_length": self.edge_decay_length,
             "evanescent_bound": self.evanescent_bound,
             "gauge_phase": self.gauge_phase,
+            "quarter_turns": self.quarter_turns,
             "n_segments": self.n_segments,
             "n_modes": self.n_modes,
             "created": self.created,
@@ -294,6 +330,7 @@ def segment_smatrices(
     strength: float = 1.0,
     first_realisation: int = 0,
     evanescent_tolerance: float = EVANESCENT_TOLERANCE,
+    quarter_turns: int = 0,
 ) -> SegmentSet:
     """Solve a pool of independent disordered segments and store their S-matrices.
 
@@ -333,6 +370,9 @@ def segment_smatrices(
     evanescent_tolerance : float, optional
         Bound on ``exp(-2 b / l_ev)`` above which a
         :class:`~pipeline.errors.ConcatenationWarning` is issued.
+    quarter_turns : int, optional
+        1: segments of an edge along y (the onsite disorder turned with the device, see
+        :func:`turned_onsite`); 0 (default): along x.
 
     Returns
     -------
@@ -364,7 +404,8 @@ def segment_smatrices(
     terms = tuple(disorder_terms)
     blocks, kwant_err = _solve_segments(strip, terms, b_cols, n_segments=int(n_segments),
                                         seed=int(seed), first_realisation=int(first_realisation),
-                                        strength=strength, b_perp=b_perp)
+                                        strength=strength, b_perp=b_perp,
+                                        quarter_turns=int(quarter_turns) % 2)
     contact_left, contact_right = _contact_sections(material, a, rows, max(b_cols, 1), energy,
                                                     b_perp, contact_doping, basis)
     return SegmentSet(
@@ -374,7 +415,7 @@ def segment_smatrices(
         seed=int(seed), first_realisation=int(first_realisation),
         contact_doping=float(contact_doping), contact_left=contact_left,
         contact_right=contact_right, evanescent_length=l_ev, edge_decay_length=edge_decay,
-        gauge_phase=strip.gauge_phase, created=utc_now(),
+        gauge_phase=strip.gauge_phase, quarter_turns=int(quarter_turns) % 2, created=utc_now(),
     )
 
 
@@ -429,8 +470,8 @@ def _buffer_columns(buffer, l_ev: float, tol: float, a: float, n_cols: int, ener
 
 
 def _solve_segments(strip: StripScatterer, terms: tuple, b_cols: int, *, n_segments: int,
-                    seed: int, first_realisation: int, strength: float, b_perp: float
-                    ) -> tuple[np.ndarray, np.ndarray]:
+                    seed: int, first_realisation: int, strength: float, b_perp: float,
+                    quarter_turns: int = 0) -> tuple[np.ndarray, np.ndarray]:
     """Blocks (4, n_segments, m, m) and Kwant unitarity errors of the pool's segments."""
     m = strip.basis.n_modes
     mesh = strip.dsys.mesh
@@ -441,6 +482,7 @@ def _solve_segments(strip: StripScatterer, terms: tuple, b_cols: int, *, n_segme
         pot, extra = masked_disorder(terms, mesh, strip.device, seed=seed,
                                      realisation=first_realisation + k,
                                      strength=strength, clean=clean)
+        extra = turned_onsite(extra, quarter_turns)
         s = strip.solve(strip.dsys.params(b_perp=b_perp, potential=pot, onsite_extra=extra))
         blocks[:, k] = (s.r, s.t, s.tp, s.rp)
         kwant_err[k] = strip.last_kwant_unitarity
@@ -461,10 +503,33 @@ def _contact_sections(material, a, rows, c_cols, energy, b_perp, contact_doping,
     return sections[0], sections[1]
 
 
+def contact_sections(pool: SegmentSet, doping: float) -> tuple[SMatrix | None, SMatrix | None]:
+    """Clean contact sections of a pool's strip for a given contact doping.
+
+    Parameters
+    ----------
+    pool : SegmentSet
+        Gives the strip (material, ``a``, width), the energy, field and canonical basis; the
+        clean device length of a section is the pool's buffer (at least one column).
+    doping : float
+        Band shift (meV) of the contact's lead; 0 gives ``(None, None)``.
+
+    Returns
+    -------
+    tuple of SMatrix or None
+        ``(left, right)``: doped lead on the left (device side on the right, canonical basis),
+        and the mirror one.
+    """
+    rows = int(round(pool.width / pool.lattice_constant))
+    return _contact_sections(pool.material, pool.lattice_constant, rows,
+                             max(pool.buffer_columns, 1), pool.energy, pool.b_perp, doping,
+                             pool.basis)
+
+
 def _same_model(a: SegmentSet, b: SegmentSet) -> list[str]:
     """Names of the model fields in which two pools differ."""
     keys = ("material", "lattice_constant", "width", "segment_length", "buffer", "energy",
-            "b_perp", "disorder", "strength", "seed", "contact_doping")
+            "b_perp", "disorder", "strength", "seed", "contact_doping", "quarter_turns")
     return [k for k in keys if getattr(a, k) != getattr(b, k)]
 
 

@@ -152,7 +152,8 @@ def load_segments(zarr_group, *, name: str = "segments") -> SegmentSet:
         strength=meta["strength"], seed=meta["seed"],
         first_realisation=meta["first_realisation"], contact_doping=meta["contact_doping"],
         evanescent_length=meta["evanescent_length"], edge_decay_length=meta["edge_decay_length"],
-        gauge_phase=meta["gauge_phase"], created=meta.get("created", ""), **_read_contacts(g),
+        gauge_phase=meta["gauge_phase"], quarter_turns=int(meta.get("quarter_turns", 0)),
+        created=meta.get("created", ""), **_read_contacts(g),
     )
 
 

@@ -323,6 +323,29 @@ class ConcatenationSection(_Strict):
     pool_resamples: int = Field(default=200, ge=0, le=100_000)
 
 
+class EdgesSection(_Strict):
+    """The helical-edge network model of a multi-terminal device (see :mod:`pipeline.network`):
+    edge sections composed from pools of disordered segments, contacts as reservoirs."""
+
+    #: length of one pool segment (nm) including its clean buffers, a multiple of the lattice constant
+    segment_length: float = Field(gt=0, le=1e5)
+    #: segments per pool; one pool per (edge energy, field, disorder strength)
+    segments: int = Field(default=200, ge=2, le=100_000)
+    #: sampled devices per sweep point (the realisations of the network model)
+    sequences: int = Field(default=1000, ge=2, le=10_000_000)
+    #: clean buffer at each segment end (nm), or "auto" (from the evanescent decay length)
+    buffer: float | Literal["auto"] = "auto"
+    #: width of the pool strip (nm), or "auto" (5 edge decay lengths); the device's own widths
+    #: enter only through the guard rails
+    width: float | Literal["auto"] = "auto"
+    #: "coherent" (phase kept along a section) or "incoherent" (full dephasing between segments)
+    composition: Literal["coherent", "incoherent"] = "coherent"
+    #: bootstrap resamples of the pools for the standard error of the mean (0: skip)
+    pool_resamples: int = Field(default=50, ge=0, le=100_000)
+    #: bound on exp(-2 b / l_ev), the evanescent coupling across a segment junction
+    evanescent_tolerance: float = Field(default=1e-6, gt=0, lt=1)
+
+
 class SweepConfig(_Strict):
     run: RunSection
     device: DeviceSection
@@ -336,6 +359,7 @@ class SweepConfig(_Strict):
     execution: ExecutionSection = ExecutionSection()
     cluster: ClusterSection = ClusterSection()
     concatenation: ConcatenationSection | None = None
+    edges: EdgesSection | None = None
     #: directory of the config file (resolves relative geometry paths); not part of the file
     base_dir: str = Field(default=".", exclude=True)
     #: the exact text the config was read from
@@ -447,6 +471,7 @@ def _check_cross(cfg: SweepConfig, source: str) -> None:
     _check_device_source(cfg, source)
     _check_lengths_and_gates(cfg, source)
     _check_concatenation(cfg, source)
+    _check_edges(cfg, source)
     cfg.material.parameters()  # validates the BHZ set (raises ModelError with the fix)
 
 
@@ -548,6 +573,28 @@ def _check_concatenation(cfg: SweepConfig, source: str) -> None:
             raise ConfigError(f"{source}: [concatenation] does not support a gate sweep (the strip has no gates)")
 
 
+def _check_edges(cfg: SweepConfig, source: str) -> None:
+    """An ``[edges]`` table: lengths on the lattice (the device itself is checked by the
+    network's guard rails before compute)."""
+    ec = cfg.edges
+    if ec is None:
+        return
+    a = cfg.lattice.constant
+    for key, value in (("segment_length", ec.segment_length), ("buffer", ec.buffer),
+                       ("width", ec.width)):
+        if value == "auto":
+            continue
+        ratio = float(value) / a
+        if ratio < 1 - 1e-9 and not (key == "buffer" and value == 0):
+            raise ConfigError(f"{source}: 'edges.{key}' = {value!r} nm is below the lattice "
+                              f"constant {a:g} nm (lengths are in nm)")
+        if abs(ratio - round(ratio)) > 1e-9:
+            raise ConfigError(
+                f"{source}: 'edges.{key}' = {value!r} nm is not a multiple of the lattice "
+                f"constant {a:g} nm; use {round(ratio) * a:g}"
+            )
+
+
 def config_hash(cfg: SweepConfig) -> str:
     """SHA-256 of everything that determines the numbers in the sample store.
 
@@ -559,7 +606,7 @@ def config_hash(cfg: SweepConfig) -> str:
     """
     data = cfg.model_dump(mode="json",
                           exclude={"execution": True, "cluster": True, "concatenation": True,
-                                   "run": {"name", "directory", "realisations"}})
+                                   "edges": True, "run": {"name", "directory", "realisations"}})
     # the hash predates the rename of "[measure] report" to "labels"; hashing the old name
     # keeps every existing store resumable
     data["measure"] = {"report": data["measure"].pop("labels"), **data["measure"]}

@@ -124,6 +124,67 @@ class SampleStore:
         return store
 
     @classmethod
+    def write_derived(cls, path: str | Path, ds, *, attrs: dict) -> "SampleStore":
+        """Write samples computed in one go from other stored data as a store of this layout.
+
+        The edge-network model (:mod:`pipeline.network`) samples whole devices from its
+        stored segment pools; its samples are written here so that the summary, the figures
+        and the package read them like a direct run's. Such a store is *derived*: it is
+        rebuilt from the pools on every report, so a previous derived store at ``path`` is
+        replaced (written beside it and renamed into place: a reader sees the old or the new
+        one, never a mixture). A store of computed samples (a direct run) is never replaced.
+
+        Parameters
+        ----------
+        path : str or Path
+            Where the store goes.
+        ds : xarray.Dataset
+            ``transmission``, ``measurements``, ``status`` and ``modes`` with the store's
+            dimensions, as NumPy arrays.
+        attrs : dict
+            Attributes to add (``config_hash``, ``config_text``, ``run_name``, ``root_seed``,
+            ``model`` ...); ``format``, ``derived``, ``created`` and ``realisation_block`` are
+            set here.
+
+        Returns
+        -------
+        SampleStore
+
+        Raises
+        ------
+        StoreError
+            ``path`` holds something that is not a derived store.
+        """
+        path = Path(path)
+        if path.exists():
+            try:
+                old = dict(zarr.open_group(str(path), mode="r").attrs)
+            except Exception:  # not a Zarr group
+                old = {}
+            if old.get("format") != _FORMAT or not old.get("derived"):
+                raise StoreError(
+                    f"{str(path)!r} exists and is not a derived sample store; it is never "
+                    "replaced. Move it away or choose another run directory"
+                )
+        ds = ds.copy()
+        ds.attrs = {**attrs, "format": _FORMAT, "derived": True, "created": utc_now(),
+                    "realisation_block": int(ds.sizes["realisation"]),
+                    "sessions": list(attrs.get("sessions", [])),
+                    "failures": list(attrs.get("failures", []))}
+        enc = {name: {"compressors": _codecs()} for name in ds.data_vars}
+        work = path.with_name(f".{path.name}.partial-{file_stamp()}")
+        path.parent.mkdir(parents=True, exist_ok=True)
+        ds.to_zarr(str(work), mode="w-", encoding=enc, zarr_format=3, consolidated=False)
+        if path.exists():
+            aside = path.with_name(f".{path.name}.old-{file_stamp()}")
+            path.rename(aside)
+            work.rename(path)
+            shutil.rmtree(aside, ignore_errors=True)
+        else:
+            work.rename(path)
+        return cls(path, zarr.open_group(str(path), mode="r"))
+
+    @classmethod
     def open(cls, path: str | Path, mode: str = "r") -> "SampleStore":
         path = Path(path)
         if not path.exists():
@@ -422,7 +483,8 @@ class SegmentPoolStore:
 
     @classmethod
     def open(cls, store_path: str | Path, digest: str, *, fresh: bool = False,
-             config_text: str = "", create: bool = True) -> "SegmentPoolStore":
+             config_text: str = "", create: bool = True,
+             group: str = GROUP) -> "SegmentPoolStore":
         """Open (or create) the pools group of the sample store at ``store_path``.
 
         Parameters
@@ -439,6 +501,8 @@ class SegmentPoolStore:
         create : bool, optional
             Create the group if needed (default). False opens an existing group read-only
             and refuses a missing one: for reading pools without computing any.
+        group : str, optional
+            Name of the sub-group (default :attr:`GROUP`, the long-edge stage's pools).
 
         Returns
         -------
@@ -450,7 +514,7 @@ class SegmentPoolStore:
             The group holds pools of a different hash and ``fresh`` is not set.
         """
         root_path = Path(store_path)
-        path = root_path / cls.GROUP
+        path = root_path / group
         if path.exists():
             old = zarr.open_group(str(path), mode="r").attrs.get("segments_hash")
             if old != digest:
@@ -460,19 +524,19 @@ class SegmentPoolStore:
                         f"{str(old)[:12]} vs {digest[:12]}); choose another run directory or pass "
                         f"--fresh to move it aside"
                     )
-                shutil.move(str(path), str(root_path / f"segments-replaced-{file_stamp()}"))
+                shutil.move(str(path), str(root_path / f"{group}-replaced-{file_stamp()}"))
         if not create:
             if not path.exists():
                 raise StoreError(
                     f"no segment pools at {str(path)!r}; compute them with "
-                    f"`helisweep report CONFIG --run`"
+                    f"`helisweep report CONFIG --run` (or `helisweep run CONFIG`)"
                 )
             return cls(path, zarr.open_group(str(path), mode="r"))
         root = zarr.open_group(str(root_path), mode="a")
-        group = root.require_group(cls.GROUP)
-        group.attrs.update(format=_SEGMENT_POOLS_FORMAT, segments_hash=digest,
-                           config_text=config_text)
-        return cls(path, group)
+        node = root.require_group(group)
+        node.attrs.update(format=_SEGMENT_POOLS_FORMAT, segments_hash=digest,
+                          config_text=config_text)
+        return cls(path, node)
 
     def __contains__(self, name: str) -> bool:
         """Whether a pool of that name is stored."""
