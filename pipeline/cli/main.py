@@ -33,6 +33,9 @@ from pipeline.device.outline import validate_device
 from pipeline.device.readers import load_device
 from pipeline.device.templates import TEMPLATES
 from pipeline.errors import HelisweepError
+from pipeline.network.plan import plan_network
+from pipeline.network.run import POOLS_STORE, network_status, run_network
+from pipeline.network.sections import section_table
 from pipeline.output.preview import preview_device
 from pipeline.output.report import build_report
 from pipeline.physics.materials import get_preset
@@ -116,6 +119,8 @@ def _cmd_solve(args) -> int:
 def _cmd_preflight(args) -> int:
 
     cfg = load_config(args.config)
+    if cfg.edges is not None:
+        return _preflight_network(cfg)
     out_dir = Path(args.out) if args.out else cfg.run_dir
     for g, value in enumerate(cfg.axes["geometry"]):
         device = device_for(cfg, g)
@@ -129,6 +134,8 @@ def _cmd_preflight(args) -> int:
 def _cmd_run(args) -> int:
 
     cfg = load_config(args.config)
+    if cfg.edges is not None:
+        return _run_network(cfg, args)
     store = run_on_cluster(cfg, cluster_overrides(args), workers=args.workers,
                            store_path=args.store, fresh=args.fresh, progress=not args.quiet)
     c = store.counts()
@@ -136,12 +143,50 @@ def _cmd_run(args) -> int:
     return 0
 
 
+def _run_network(cfg, args) -> int:
+    """``helisweep run`` of an ``[edges]`` config: pools and sampled devices (edges.nc)."""
+    if args.store:
+        raise HelisweepError(
+            f"--store {args.store!r} names a direct run's sample store; an [edges] run keeps its "
+            f"pools in <run>/{POOLS_STORE} (drop --store, or set [run] directory)")
+    plan_network(cfg)  # the guard rails refuse before any cluster starts
+    with open_client(cfg, cluster_overrides(args), workers=args.workers) as session:
+        res = run_network(cfg, client=session.client, fresh=args.fresh, progress=not args.quiet)
+    print(f"{res['netcdf']}: edge-network model, {cfg.edges.sequences} sampled devices per "
+          f"sweep point (model estimates); `helisweep report` draws the figures and the package")
+    return 0
+
+
+def _preflight_network(cfg) -> int:
+    """``helisweep preflight`` of an ``[edges]`` config: the guard rails and the sections."""
+    plan = plan_network(cfg)
+    keys = plan.pool_keys(cfg)
+    print(f"edge-network model: pool strip {plan.pool_width:g} nm wide, segments of "
+          f"{plan.segment_length:g} nm with {plan.buffer:g} nm clean buffers "
+          f"({plan.disordered_length:g} nm of disorder each); edge decay length "
+          f"{plan.edge_decay_length:.1f} nm")
+    print(f"guard rails passed: narrowest width {plan.min_width:.0f} nm, closest contacts "
+          f"{plan.min_contact_distance:.0f} nm; {len(keys)} pool(s) x {cfg.edges.segments} "
+          f"segments to solve")
+    for (e, b), l_ev in sorted(plan.evanescent_lengths.items()):
+        print(f"  edge energy {e:g} meV, B = {b:g} T: evanescent decay length {l_ev:.1f} nm")
+    for g, (dev, secs) in enumerate(zip(plan.devices, plan.sections, strict=True)):
+        head = f"{cfg.sweep.geometry.parameter} = {cfg.axes['geometry'][g]:g} nm: " \
+            if cfg.sweep.geometry else ""
+        print(f"{head}device {dev.name!r}, {len(secs)} edge sections")
+        print(section_table(dev, list(secs)))
+    return 0
+
+
 def _cmd_status(args) -> int:
 
     target = Path(args.target)
     if target.suffix == ".toml":
-
-        target = load_config(target).run_dir / "samples.zarr"
+        cfg = load_config(target)
+        if cfg.edges is not None:
+            print(network_status(cfg))
+            return 0
+        target = cfg.run_dir / "samples.zarr"
     store = SampleStore.open(target)
     print(store.report(max_failures=args.failures))
     return 0

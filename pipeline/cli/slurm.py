@@ -9,10 +9,13 @@ import sys
 from pathlib import Path
 from typing import Any
 
+from pipeline.network.plan import plan_network
+from pipeline.network.run import run_network
 from pipeline.sweep.clusters import (
     HOME_SITE_FILE,
     SETTING_NAMES,
     SITE_CONFIG_ENV,
+    allocation_client,
     render_batch_script,
     resolve_cluster_settings,
     submit_batch_script,
@@ -105,6 +108,16 @@ def _cmd_slurm_script(args) -> int:
 
 
 def _cmd_run_in_allocation(args) -> int:
+    cfg = load_config(args.config)
+    if cfg.edges is not None:  # the edge-network model: pools on the job's workers
+        plan_network(cfg)
+        with allocation_client(args.scheduler_file, expected_workers=args.expected_workers,
+                               timeout=args.timeout) as session:
+            res = run_network(cfg, client=session.client, fresh=args.fresh,
+                              progress=args.progress)
+        print(f"helisweep: {res['netcdf']} written (edge-network model)", file=sys.stderr,
+              flush=True)
+        return 0
     run_in_allocation(args.config, scheduler_file=args.scheduler_file, store_path=args.store,
                       expected_workers=args.expected_workers, timeout=args.timeout,
                       fresh=args.fresh, progress=args.progress)

@@ -48,9 +48,12 @@ from pipeline.network.solve import (
 from pipeline.sweep.config import SweepConfig, config_hash
 from pipeline.sweep.runmodel import disorder_terms
 from pipeline.sweep.store import SampleStatus, SampleStore, SegmentPoolStore
+from pipeline.timestamps import utc_now
+from pipeline.transport.environment import describe
 from pipeline.transport.landauer import parse_measurement
 
-__all__ = ["run_network", "network_samples", "POOLS_STORE", "SAMPLES_STORE", "MODEL"]
+__all__ = ["run_network", "network_samples", "network_status", "POOLS_STORE", "SAMPLES_STORE",
+           "MODEL"]
 
 #: Name of the run's store of edge-network pools (beside ``samples.zarr``).
 POOLS_STORE = "edge-pools.zarr"
@@ -299,7 +302,8 @@ def _pool_sem(cfg, plan, pool_sets, resamples: int):
 
 def run_network(cfg: SweepConfig, run_dir: str | Path | None = None, *, client=None,
                 progress: bool = True, chunk: int = 8, fresh: bool = False,
-                compute: bool = True, tolerance: float = 0.05) -> dict:
+                compute: bool = True, tolerance: float = 0.05,
+                temperatures: tuple[float, ...] = ()) -> dict:
     """Pools, sampled devices, ``edges.nc`` and L* of a config's ``[edges]`` table.
 
     Parameters
@@ -320,6 +324,9 @@ def run_network(cfg: SweepConfig, run_dir: str | Path | None = None, *, client=N
         Solve missing pools (default); False refuses a missing pool.
     tolerance : float, optional
         Relative tolerance of L*.
+    temperatures : tuple of float, optional
+        Temperatures (K) of thermal smearing in the summary (see
+        :func:`pipeline.analysis.summary.summarize`).
 
     Returns
     -------
@@ -358,10 +365,11 @@ def run_network(cfg: SweepConfig, run_dir: str | Path | None = None, *, client=N
     edge_store = SampleStore.write_derived(run_dir / SAMPLES_STORE, samples, attrs={
         **facts, "config_hash": _samples_hash(cfg, digest), "config_text": cfg.source_text,
         "run_name": cfg.run.name, "root_seed": cfg.run.seed,
+        "sessions": [{"started": utc_now(), "model": "edge network", **describe()}],
         "failures": ([f"{failed} sampled device(s) at some sweep point have a singular "
                       "conductance matrix (a contact cut off by fully reflecting edges)"]
                      if failed else [])})
-    summary = summarize(edge_store.path, config_dir=cfg.base_dir)
+    summary = summarize(edge_store.path, config_dir=cfg.base_dir, temperatures=temperatures)
     if cfg.edges.pool_resamples:
         sem = _pool_sem(cfg, plan, pool_sets, cfg.edges.pool_resamples)
         summary["sem_pool"] = sem.transpose(*summary["mean"].dims)
@@ -377,6 +385,34 @@ def run_network(cfg: SweepConfig, run_dir: str | Path | None = None, *, client=N
     _say(f"wrote {nc.name}" + (f" and {lstar_path.name}" if lstar_path else ""), progress)
     return {"netcdf": nc, "store": edge_store.path, "lstar": lstar_path, "summary": summary,
             "lstar_tables": tables, "plan": plan}
+
+
+def network_status(cfg: SweepConfig, run_dir: str | Path | None = None) -> str:
+    """What an ``[edges]`` run has stored: pools done and missing, and its result files.
+
+    Reads only (the guard rails run; no pool is computed)."""
+    run_dir = Path(run_dir) if run_dir is not None else cfg.run_dir
+    plan = plan_network(cfg)
+    keys = plan.pool_keys(cfg)
+    path = run_dir / POOLS_STORE
+    try:
+        store = SegmentPoolStore.open(path, pools_hash(cfg, plan), create=False, group="pools")
+        have = [k for k in keys if pool_name(k) in store]
+    except StoreError as exc:
+        if path.exists():
+            return f"{path}: {exc}"
+        have = []
+    missing = [pool_name(k) for k in keys if k not in have]
+    lines = [f"{path}: {len(have)} of {len(keys)} pools stored ({cfg.edges.segments} segments "
+             f"each); {len(missing)} missing" + (f": {', '.join(missing[:6])}"
+                                                  + (", ..." if len(missing) > 6 else "")
+                                                  if missing else "")]
+    for name in ("edges.nc", "lstar.json", SAMPLES_STORE):
+        p = run_dir / name
+        lines.append(f"  {name}: {'present' if p.exists() else 'not written yet'}")
+    if missing:
+        lines.append("  compute the missing pools with `helisweep run CONFIG`")
+    return "\n".join(lines)
 
 
 def _samples_hash(cfg: SweepConfig, pools_digest: str) -> str:

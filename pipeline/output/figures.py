@@ -509,7 +509,7 @@ def _label_axis_figure(ax: Any, ds: Any, label: str, unit: str, x_dim: str, x: n
     _ohm_axis(ax, unit)
     handles, _ = ax.get_legend_handles_labels()
     ax.legend(handles=handles + _band_handles(ds), fontsize=8, loc="best")
-    ax.set_title(f"{label} vs {_AXIS_LABEL.get(x_dim, x_dim)} (disorder average)"
+    ax.set_title(f"{label} vs {_AXIS_LABEL.get(x_dim, x_dim)} (disorder average{_model_tag(ds)})"
                  + (f"\n{fixed}" if fixed else ""), fontsize=10)
     ax.grid(alpha=0.3)
 
@@ -772,7 +772,8 @@ def _finish_length_panel(ax: Any, d: _LengthData, lstar: LStarResult | None) -> 
     ax.legend(fontsize=7.5, loc="upper right")
     ax.grid(alpha=0.3)
     fixed = _fixed_text(d.ds, d.idx, ("geometry",))
-    ax.set_title(f"{d.label} vs {d.param}" + (f"\n{fixed}" if fixed else ""), fontsize=10)
+    ax.set_title(f"{d.label} vs {d.param}" + (f" ({_model_tag(d.ds)[2:]})" if _model_tag(d.ds) else "")
+                 + (f"\n{fixed}" if fixed else ""), fontsize=10)
     if lstar is not None and lstar.flags:
         ax.text(0.0, -0.16, f"L* flags: {', '.join(lstar.flags)}", transform=ax.transAxes,
                 fontsize=7, color=OKABE_ITO[3], va="top", ha="left")
@@ -997,7 +998,9 @@ def figure_distribution(run: RunData, label: str, slug: str | None = None,
     ax.set_xlabel(f"{label} ({_pretty(unit)})")
     ax.set_ylabel("realisations per bin (1)")
     ax.yaxis.set_major_locator(MaxNLocator(integer=True))
-    ax.set_title(f"Distribution of {label} over disorder realisations"
+    ax.set_title(f"Distribution of {label} over "
+                 + ("sampled devices (edge-network model)" if _model_tag(run.summary)
+                    else "disorder realisations")
                  + (f"\n{common}" if common else ""), fontsize=10)
     ax.legend(fontsize=7.5, loc="best")
     ax.grid(alpha=0.3)
@@ -1253,6 +1256,14 @@ def make_figures(run: RunData, out_dir: str | Path, *, lstar: Any = None,
             written += _save(figure_vs_length(run, label, slugs[label], select, chosen), out_dir)
         written += _save(figure_distribution(run, label, slugs[label], distribution_points,
                                              select), out_dir)
-    written += _save(figure_device(run), out_dir)
-    written += _save(figure_current(run, current_point), out_dir)
+    if not _model_tag(ds):
+        # the edge-network model never meshes the whole device (it may be tens of um):
+        # no mesh figure and no current map, which would need a direct solve
+        written += _save(figure_device(run), out_dir)
+        written += _save(figure_current(run, current_point), out_dir)
     return written
+
+
+def _model_tag(ds: Any) -> str:
+    """``", edge-network model"`` for results of the edge-network model, else ``""``."""
+    return ", edge-network model" if "network" in str(ds.attrs.get("model", "")) else ""

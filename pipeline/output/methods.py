@@ -184,8 +184,9 @@ def _disorder_section(cfg: SweepConfig) -> str:
         "sample at every energy, gate voltage and field.")
 
 
-def _sweep_section(cfg: SweepConfig, counts: Mapping) -> str:
-    """The values of every sweep axis but the geometry, and the sample counts."""
+def _sweep_section(cfg: SweepConfig, counts: Mapping, sampled: int | None = None) -> str:
+    """The values of every sweep axis but the geometry, and the sample counts (``sampled``:
+    devices per point of the edge-network model instead of realisations)."""
     clauses = []
     for dim, what, unit in (("energy", "the Fermi energy", "meV"),
                             ("gate_voltage", "the gate voltage", "V"),
@@ -198,6 +199,9 @@ def _sweep_section(cfg: SweepConfig, counts: Mapping) -> str:
     stats = (f"At each sweep point {cfg.run.realisations} disorder realisations were requested "
              f"({counts['done']} samples computed, {counts['failed']} failed and "
              f"{counts['missing']} missing, counted over all sweep points).")
+    if sampled is not None:
+        stats = (f"At each sweep point {sampled} devices were sampled ({counts['done']} "
+                 f"computed and {counts['failed']} failed, counted over all sweep points).")
     return sweep + " " + stats
 
 
@@ -236,6 +240,21 @@ def _transport_section(summary: Any, session: Mapping) -> str:
     return text
 
 
+def _network_transport_section(summary: Any) -> str:
+    """Landauer-Buttiker on the network's transmissions and the ideal reference values."""
+    labels = [str(m) for m in summary["measurement"].values]
+    ideal = [f"{x} = {_g(float(summary['quantised'].sel(measurement=x).values))} "
+             f"{str(summary['unit'].sel(measurement=x).values)}" for x in labels
+             if math.isfinite(float(summary["quantised"].sel(measurement=x).values))]
+    text = (f"The reported quantities ({'; '.join(_measurement_phrase(x) for x in labels)}) "
+            "follow from the multi-terminal Landauer-Buttiker formulas, with voltage probes "
+            "drawing no net current.")
+    if ideal:
+        text += (" Ideal quantum spin Hall values for comparison come from ideal "
+                 f"helical-edge transmissions ({'; '.join(ideal)}).")
+    return text
+
+
 def _statistics_section(summary: Any) -> str:
     """What the plotted values and error bars are (and any thermal smearing)."""
     text = (f"Plotted values are means over realisations; error bars are "
@@ -245,12 +264,60 @@ def _statistics_section(summary: Any) -> str:
     return text + _thermal_text(summary.attrs)
 
 
+def _network_section(cfg: SweepConfig, attrs: Mapping) -> str:
+    """The edge-network model, its numbers and its assumptions (from the store attributes)."""
+    ec = cfg.edges
+    comp = ("coherently (amplitudes, so interference and localisation are kept)"
+            if ec.composition == "coherent" else
+            "incoherently (probabilities: full dephasing between segments)")
+    return (
+        "Transport was modelled with the helical-edge network model (edge-network model), not "
+        "by solving the whole device: with the Fermi level in the bulk gap, current flows "
+        "along the outline, so the device is a network of edge sections joining neighbouring "
+        "contacts, each a coherent scatterer, with the contacts as reservoirs. Before any "
+        "computation the run was checked to keep every edge (also under gates) inside the bulk "
+        "gap with exactly one helical pair per edge, every arm at least 4 edge decay lengths "
+        f"wide ({_g(attrs.get('edge_decay_length_nm', float('nan')))} nm decay length; the "
+        f"narrowest width was {_g(attrs.get('narrowest_width_nm', float('nan')))} nm) and the "
+        "contacts further apart than ln(1/tolerance) evanescent decay lengths "
+        f"(closest pair {_g(attrs.get('closest_contacts_nm', float('nan')))} nm). "
+        "Each section's length was measured along the outline, corners included. Its parts "
+        "along x and along y and under each set of gates were modelled by n = round(L / l_d) "
+        f"segments drawn at random from pools of {ec.segments} independent disordered segments "
+        f"of a {_g(attrs.get('pool_width_nm', float('nan')))} nm-wide strip of the same material "
+        f"and disorder; a segment is {_g(attrs.get('segment_length_nm', float('nan')))} nm long "
+        f"with clean buffers of {_g(attrs.get('buffer_nm', float('nan')))} nm at both ends "
+        "(so that evanescent waves decay between neighbouring segments), and only its "
+        f"disordered part l_d = {_g(attrs.get('disordered_length_nm', float('nan')))} nm counts "
+        "as edge length. Both edges of a pool segment serve as edge scatterers (their coupling "
+        "through the strip was at most "
+        f"{float(attrs.get('max_inter_edge_leak', float('nan'))):.1e} in ||S^dagger S - 1||). "
+        "Parts along y use pools whose onsite terms were turned by a quarter turn of the "
+        "lattice model: the model's in-plane exchange acts on the E and H spins alike, so "
+        "backscattering depends on the edge direction. A pool exists for every edge energy "
+        "E - U_gate, field and disorder strength. Segments were composed along a section "
+        f"{comp}; the pieces of a section under different gates or along different directions "
+        "were joined without scattering (ideal interfaces) and pieces of one kind grouped, "
+        "which reorders independent scatterers. Contacts of the well material absorb every "
+        "arriving edge wave and emit into both neighbouring sections; metallic contacts were "
+        "represented by a solved contact section (doped lead, clean well material) of the pool "
+        "strip's width, not of the contact's own width. Disorder correlations do not cross a "
+        "segment junction. For each sampled device the transmission matrix between all "
+        "contacts followed from the network of section and contact scattering matrices "
+        f"({'amplitudes' if ec.composition == 'coherent' else 'probabilities'}); device s "
+        "draws the same segments at every sweep point."
+    )
+
+
 def _inputs_list(cfg: SweepConfig, attrs: Mapping, session: Mapping) -> str:
+    network = "network" in str(attrs.get("model", ""))
     return "\n".join([
         f"- run: {cfg.run.name} (config hash {attrs.get('config_hash', '')[:16]})",
         f"- material preset: {cfg.material.preset or 'explicit parameters'}",
         f"- lattice constant: {_g(cfg.lattice.constant)} nm",
-        f"- realisations requested: {cfg.run.realisations}",
+        (f"- model: edge network, {cfg.edges.composition}; sampled devices per point: "
+         f"{cfg.edges.sequences}; pool segments: {cfg.edges.segments}" if network else
+         f"- realisations requested: {cfg.run.realisations}"),
         f"- root seed: {cfg.run.seed}",
         f"- Kwant {session.get('kwant', 'unknown')}, solver {session.get('kwant_solver', 'unknown')}",
     ])
@@ -277,6 +344,19 @@ def methods_text(run: Any, facts: Mapping | None = None) -> str:
     last = sessions[-1] if sessions else {}
     closing = ("All numbers are model estimates for an idealised device; they are not "
                "measurements and do not certify any device.")
+    if "network" in str(facts["attrs"].get("model", "")):
+        paragraph = " ".join([
+            _material_section(cfg), _device_section(cfg), _contacts_and_gates_section(cfg),
+            _disorder_section(cfg), _sweep_section(cfg, facts["counts"], cfg.edges.sequences),
+            _network_section(cfg, facts["attrs"]),
+            _network_transport_section(run.summary), _statistics_section(run.summary),
+            "The errors of the means also have a pool part: sampled devices share pool "
+            "segments, so the interval over devices is optimistic; sem_pool in the data "
+            "(the standard deviation of the mean over bootstrap resamples of the pools) "
+            "includes it.", closing,
+        ])
+        return ("# Methods (generated)\n\n" + paragraph + "\n\n## Inputs at a glance\n\n"
+                + _inputs_list(cfg, facts["attrs"], last) + "\n")
     paragraph = " ".join([
         _material_section(cfg), _device_section(cfg), _contacts_and_gates_section(cfg),
         _disorder_section(cfg), _sweep_section(cfg, facts["counts"]),

@@ -192,6 +192,9 @@ def _write_lstar(work: Path, lstar_results: Sequence) -> None:
 # --------------------------------------------------------------------------- README
 _FILE_NOTES = {
     "summary.nc": "the aggregated statistics over disorder realisations (NetCDF-4)",
+    "edges.nc": ("the aggregated statistics over sampled devices of the edge-network model "
+                 "(NetCDF-4; the variables of a direct run's summary plus sem_pool)"),
+    "edges.csv": "the main statistics of edges.nc as one flat table",
     "summary.csv": "the main statistics of summary.nc as one flat table",
     "config.toml": "the exact configuration text the samples were computed with",
     "provenance.json": ("software versions, Kwant solver, BLAS, host, seeds, run sessions and "
@@ -207,6 +210,20 @@ _FILE_NOTES = {
 
 def _readme_head(run: RunData, counts: Mapping) -> list[str]:
     cfg = run.config
+    if cfg.edges is not None and "network" in str(run.summary.attrs.get("model", "")):
+        return [
+            f"# Supplementary data: run `{cfg.run.name}` (edge-network model)",
+            "",
+            "**These are model estimates** of the helical-edge network model: edge sections "
+            "composed from pools of disordered segments of the four-band BHZ tight-binding "
+            "model (solved with Kwant), contacts as reservoirs, Landauer-Buttiker over "
+            "sampled devices (see methods.md for its assumptions). They are not measurements "
+            "and do not certify any device.",
+            "",
+            f"Sampled devices per sweep point: {cfg.edges.sequences}; samples done "
+            f"{counts['done']}, failed {counts['failed']} (of {counts['total']}).",
+            "",
+        ]
     return [
         f"# Supplementary data: run `{cfg.run.name}`",
         "",
@@ -286,11 +303,14 @@ def _readme_usage(first_label: str) -> list[str]:
     ]
 
 
-def _readme(run: RunData, files: Sequence[str], facts: Mapping) -> str:
+def _readme(run: RunData, files: Sequence[str], facts: Mapping, name: str = "summary") -> str:
     labels = [str(m) for m in run.summary["measurement"].values]
     lines = (_readme_head(run, facts["counts"]) + _readme_files(files)
              + _readme_units(run.summary, labels) + _readme_usage(labels[0]))
-    return "\n".join(lines)
+    text = "\n".join(lines)
+    if name != "summary":
+        text = text.replace("summary.nc", f"{name}.nc").replace("summary.csv", f"{name}.csv")
+    return text
 
 
 # --------------------------------------------------------------------------- package
@@ -345,10 +365,11 @@ def _manifest(folder: Path) -> str:
     return "\n".join(lines) + "\n"
 
 
-def _write_data(work: Path, run: RunData, facts: Mapping) -> None:
-    """summary.nc, summary.csv, config.toml and the device file of a file-based device."""
-    _write_netcdf(run.summary, work / "summary.nc")
-    _write_summary_csv(run.summary, work / "summary.csv")
+def _write_data(work: Path, run: RunData, facts: Mapping, name: str = "summary") -> None:
+    """summary.nc, summary.csv (or edges.*), config.toml and the device file of a file-based
+    device."""
+    _write_netcdf(run.summary, work / f"{name}.nc")
+    _write_summary_csv(run.summary, work / f"{name}.csv")
     (work / "config.toml").write_text(
         str(facts["attrs"].get("config_text") or run.config.source_text), encoding="utf-8")
     if run.config.device.file is not None:
@@ -380,15 +401,16 @@ def _copy_extra(work: Path, extra_files: Iterable) -> None:
         shutil.copyfile(f, work / "data" / f.name)
 
 
-def _write_documents(work: Path, run: RunData, facts: Mapping, lstar_results: Sequence) -> None:
+def _write_documents(work: Path, run: RunData, facts: Mapping, lstar_results: Sequence,
+                     name: str = "summary") -> None:
     """lstar.json, provenance.json, methods.md, README.md and, last, the manifest."""
     if lstar_results:
         _write_lstar(work, lstar_results)
     _write_json(work / "provenance.json", _provenance(run, dict(facts), lstar_results))
     (work / "methods.md").write_text(methods_text(run, facts), encoding="utf-8")
     files = sorted(p.relative_to(work).as_posix() for p in work.rglob("*") if p.is_file())
-    (work / "README.md").write_text(_readme(run, files + ["README.md", MANIFEST_NAME], facts),
-                                    encoding="utf-8")
+    (work / "README.md").write_text(
+        _readme(run, files + ["README.md", MANIFEST_NAME], facts, name), encoding="utf-8")
     (work / MANIFEST_NAME).write_text(_manifest(work), encoding="utf-8")
 
 
@@ -416,6 +438,7 @@ def make_package(
     store_path: str | Path | None = None,
     config: Any = None,
     extra_files: Iterable[str | Path] = (),
+    summary_name: str = "summary",
 ) -> tuple[Path, Path]:
     """Write the supplementary-data package of a run (a folder and a zip of it).
 
@@ -441,6 +464,9 @@ def make_package(
     extra_files : iterable of paths, optional
         Further data files of the run (e.g. the concatenated-edge results), copied into
         ``data/`` of the package.
+    summary_name : str, optional
+        Stem of the summary's files in the package: ``summary`` (``summary.nc``,
+        ``summary.csv``; default) or ``edges`` for the edge-network model.
 
     Returns
     -------
@@ -468,11 +494,14 @@ def make_package(
     lstar_results = list(lstar_results.values() if isinstance(lstar_results, Mapping)
                          else lstar_results)
 
+    if summary_name not in ("summary", "edges"):
+        raise ExportError(f"summary_name must be 'summary' or 'edges', got {summary_name!r}")
+
     def fill(work: Path) -> None:
-        _write_data(work, run, facts)
+        _write_data(work, run, facts, summary_name)
         _write_figures(work, run, figures, lstar_results)
         _copy_extra(work, extra_files)
-        _write_documents(work, run, facts, lstar_results)
+        _write_documents(work, run, facts, lstar_results, summary_name)
 
     _assemble(base, folder, fill)
     _zip(folder, zpath)

@@ -15,6 +15,8 @@ from pathlib import Path
 from pipeline.analysis.lstar import longest_ballistic_length, save_lstar
 from pipeline.analysis.summary import save_summary, summarize
 from pipeline.longedges.run import run_concatenation
+from pipeline.network.plan import plan_network
+from pipeline.network.run import run_network
 from pipeline.output.figures import load_run, make_figures
 from pipeline.output.longedge_figures import plot_concatenated
 from pipeline.output.package import make_package
@@ -85,13 +87,22 @@ def build_report(
     ``[concatenation]`` table) are computed first on ``client``, or, without one, on a
     client obtained through the config's ``[cluster]`` table
     (:func:`pipeline.sweep.clusters.open_client`).
+
+    A config with an ``[edges]`` table is reported with the edge-network model
+    (:func:`pipeline.network.run.run_network`): ``edges.nc`` instead of ``summary.nc``, the
+    figures and package of its sampled devices; ``run=True`` then computes missing segment
+    pools (the device itself is never solved whole).
     """
     run_dir = Path(run_dir) if run_dir is not None else cfg.run_dir
     if run and client is None:
+        if cfg.edges is not None:
+            plan_network(cfg)  # the guard rails refuse before any cluster starts
         with open_client(cfg, store_path=run_dir / "samples.zarr") as session:
             return build_report(cfg, run_dir, client=session.client, run=True,
                                 temperatures=temperatures, tolerance=tolerance,
                                 progress=progress)
+    if cfg.edges is not None:
+        return _network_report(cfg, run_dir, client, run, temperatures, tolerance, progress)
     store_path = run_dir / "samples.zarr"
     if run:
         run_sweep(cfg, client=client, store_path=store_path, progress=progress)
@@ -112,6 +123,23 @@ def build_report(
     folder, zip_path = make_package(run_dir, lstar_results=lstar, figures=figures,
                                     summary=summary, store_path=store_path, config=cfg,
                                     extra_files=extra)
+    _say(f"package: {folder} and {zip_path}", progress)
+    return zip_path
+
+
+def _network_report(cfg, run_dir: Path, client, run: bool, temperatures, tolerance: float,
+                    progress: bool) -> Path:
+    """The report of an ``[edges]`` run: edges.nc, L*, figures and package of the model."""
+    _say("edge-network model", progress)
+    res = run_network(cfg, run_dir, client=client, progress=progress, compute=run,
+                      tolerance=tolerance, temperatures=temperatures)
+    _say("drawing figures", progress)
+    rundata = load_run(res["store"], res["summary"], config=cfg)
+    figures = list(make_figures(rundata, run_dir / "figures", lstar=res["lstar_tables"] or None))
+    _say("writing the supplementary-data package", progress)
+    folder, zip_path = make_package(run_dir, lstar_results=res["lstar_tables"], figures=figures,
+                                    summary=res["summary"], store_path=res["store"], config=cfg,
+                                    summary_name="edges")
     _say(f"package: {folder} and {zip_path}", progress)
     return zip_path
 
