@@ -86,6 +86,7 @@ class NetworkPlan:
     edge_decay_length: float = math.nan
     min_width: float = math.nan
     min_contact_distance: float = math.nan
+    evanescent_bound: float = 0.0
 
     @property
     def disordered_length(self) -> float:
@@ -206,11 +207,11 @@ def _parts(sec: EdgeSection, l_d: float, where: str) -> tuple[SectionPart, ...]:
     return tuple(out)
 
 
-def _check_geometry(device, sections, decay: float, coupling: float, step: float, where: str
-                    ) -> tuple[float, float]:
+def _check_geometry(device, sections, decay: float, coupling: float, step: float, where: str,
+                    width_guard: bool = True) -> tuple[float, float]:
     """Arm widths and contact distances; returns (min width, min contact distance)."""
     width, xy, sec = local_widths(device, sections, step=step)
-    if width < EDGE_WIDTH_FACTOR * decay:
+    if width_guard and width < EDGE_WIDTH_FACTOR * decay:
         raise ModelError(
             f"{where}: the device is only {width:.0f} nm wide at ({xy[0]:.0f}, {xy[1]:.0f}) nm "
             f"(edge section {sec}), less than {EDGE_WIDTH_FACTOR:g} edge decay lengths "
@@ -237,8 +238,15 @@ def _check_geometry(device, sections, decay: float, coupling: float, step: float
     return width, dist
 
 
-def plan_network(cfg: SweepConfig) -> NetworkPlan:
+def plan_network(cfg: SweepConfig, *, width_guard: bool = True) -> NetworkPlan:
     """Check a config's ``[edges]`` run and describe it (see the module docstring).
+
+    Parameters
+    ----------
+    cfg : SweepConfig
+    width_guard : bool, optional
+        False skips the arm-width guard rail: only for studies of where the model breaks
+        (``benchmarks/edge_network/validate.py``); results are then outside its validity.
 
     Raises
     ------
@@ -283,6 +291,14 @@ def plan_network(cfg: SweepConfig) -> NetworkPlan:
     else:
         b_cols = int(round(float(ec.buffer) / a))
     buffer = b_cols * a
+    bound = max(math.exp(-2 * buffer / x) if x > 0 else 0.0 for x in l_ev.values())
+    if bound > tol:
+        warnings.warn(
+            f"the clean buffers of {buffer:g} nm leave an evanescent coupling exp(-2b/l_ev) = "
+            f"{bound:.2g} between segments, above 'edges.evanescent_tolerance' = {tol:g}; use "
+            f"buffer = \"auto\" or at least "
+            f"{math.ceil(0.5 * max(l_ev.values()) * math.log(1 / tol) / a) * a:g} nm, or raise "
+            "the tolerance", NetworkWarning, stacklevel=2)
     l_d = ec.segment_length - 2 * buffer
     if l_d <= 0:
         raise ConfigError(
@@ -299,7 +315,7 @@ def plan_network(cfg: SweepConfig) -> NetworkPlan:
             raise ModelError(f"{where}: the contacts change along the geometry axis "
                              f"({dev.contact_names!r} vs {names!r})")
         w, d = _check_geometry(dev, secs, decay, coupling, step=max(a, 1e-4 * dev.outline.length),
-                               where=where)
+                               where=where, width_guard=width_guard)
         widths.append(w)
         dists.append(d)
         parts.append(tuple(_parts(s, l_d, where) for s in secs))
@@ -311,7 +327,7 @@ def plan_network(cfg: SweepConfig) -> NetworkPlan:
         contact_names=tuple(names), contact_doping=dop, gate_potentials=pots,
         pool_width=width, buffer=buffer, segment_length=float(ec.segment_length),
         evanescent_lengths=l_ev, edge_decay_length=decay, min_width=min(widths),
-        min_contact_distance=min(dists),
+        min_contact_distance=min(dists), evanescent_bound=bound,
     )
 
 

@@ -4,9 +4,10 @@
 2. One pool of disordered segments per (edge energy, field, disorder strength) is solved in
    chunks on the Dask workers and kept in ``<run>/edge-pools.zarr`` (a rerun reuses them).
 3. For every sweep point, ``sequences`` devices are sampled: each part of each edge section
-   is composed from drawn pool segments (:mod:`pipeline.network.solve`), the network of
-   sections and contacts gives the transmission matrix, and the Landauer-Buttiker solver
-   every requested measurement. Device ``s`` draws the same segments at every sweep point
+   is composed from drawn pool segments (:mod:`pipeline.network.solve`; coherently or
+   incoherently, as configured), the network of the sections' probabilities and the contacts
+   gives the transmission matrix (dephased at metallic contacts), and the Landauer-Buttiker
+   solver every requested measurement. Device ``s`` draws the same segments at every sweep point
    (and nested ones along a length axis), as realisation ``s`` of a direct run carries the
    same disorder everywhere.
 4. The sampled devices form a dataset with the sample store's layout (``realisation`` = sampled
@@ -110,20 +111,20 @@ def _solve_pools(cfg, plan, store, keys, client, chunk, progress, compute) -> di
     starts = list(range(0, ec.segments, chunk))
     for key in todo:
         e, b, s, axis = key
+        # the plan has warned about a buffer above the tolerance: the workers need not
         kw = dict(energy=e, seed=cfg.run.seed, b_perp=b, strength=s, buffer=plan.buffer,
-                  evanescent_tolerance=ec.evanescent_tolerance, quarter_turns=axis)
+                  evanescent_tolerance=min(0.999, max(ec.evanescent_tolerance,
+                                                      1.001 * plan.evanescent_bound)),
+                  quarter_turns=axis)
         n_of = {k0: min(chunk, ec.segments - k0) for k0 in starts}
-        with warnings.catch_warnings():
-            # the plan already checked the width and the buffer against the tolerance
-            warnings.filterwarnings("ignore", message=".*(decay lengths|evanescent).*")
-            if client is None:
-                parts = [pools.segment_smatrices(*args, n_segments=n_of[k0], first_realisation=k0,
-                                                 **kw) for k0 in starts]
-            else:
-                futures = [client.submit(pools.segment_smatrices, *args, n_segments=n_of[k0],
-                                         first_realisation=k0, pure=False, retries=2, **kw)
-                           for k0 in starts]
-                parts = client.gather(futures)
+        if client is None:
+            parts = [pools.segment_smatrices(*args, n_segments=n_of[k0], first_realisation=k0,
+                                             **kw) for k0 in starts]
+        else:
+            futures = [client.submit(pools.segment_smatrices, *args, n_segments=n_of[k0],
+                                     first_realisation=k0, pure=False, retries=2, **kw)
+                       for k0 in starts]
+            parts = client.gather(futures)
         pool = pools.merge_segments(parts)
         storage.save_segments(pool, store.group, name=pool_name(key))
         out[key] = pool
@@ -183,11 +184,16 @@ def _point_transmissions(cfg, plan, pool_blocks, nodes_at, idx, maps=None) -> np
                                        float(strength), part.axis)
                                 pieces.append(parts_of(key, s, p)[g])
                             blocks.append(compose_runs(pieces))
+                        # sections enter the network as probabilities: a wave a metallic
+                        # contact sends on into the next section is dephased there
                         sec = tuple(np.stack([x[k][:, 0, 0] for x in blocks], axis=-1)
                                     for k in range(4))
+                        if coherent:
+                            sec = tuple(np.abs(x) ** 2 for x in sec)
                         out[:, g, js, ib, iv, ie] = network_transmissions(
-                            sec, [x.start_contact for x in secs], [x.end_contact for x in secs],
-                            nodes, coherent=coherent)
+                            tuple(np.real(x) for x in sec),
+                            [x.start_contact for x in secs], [x.end_contact for x in secs],
+                            nodes, coherent=False)
     return out
 
 
@@ -303,7 +309,7 @@ def _pool_sem(cfg, plan, pool_sets, resamples: int):
 def run_network(cfg: SweepConfig, run_dir: str | Path | None = None, *, client=None,
                 progress: bool = True, chunk: int = 8, fresh: bool = False,
                 compute: bool = True, tolerance: float = 0.05,
-                temperatures: tuple[float, ...] = ()) -> dict:
+                temperatures: tuple[float, ...] = (), width_guard: bool = True) -> dict:
     """Pools, sampled devices, ``edges.nc`` and L* of a config's ``[edges]`` table.
 
     Parameters
@@ -327,6 +333,9 @@ def run_network(cfg: SweepConfig, run_dir: str | Path | None = None, *, client=N
     temperatures : tuple of float, optional
         Temperatures (K) of thermal smearing in the summary (see
         :func:`pipeline.analysis.summary.summarize`).
+    width_guard : bool, optional
+        False skips the arm-width guard rail (studies of the model's limits only; see
+        :func:`pipeline.network.plan.plan_network`).
 
     Returns
     -------
@@ -338,7 +347,7 @@ def run_network(cfg: SweepConfig, run_dir: str | Path | None = None, *, client=N
     if cfg.edges is None:
         raise ConfigError("the config has no [edges] table; add one (see docs/edge-network.md)")
     run_dir = Path(run_dir) if run_dir is not None else cfg.run_dir
-    plan = plan_network(cfg)  # every guard rail before compute
+    plan = plan_network(cfg, width_guard=width_guard)  # every guard rail before compute
     keys = plan.pool_keys(cfg)
     if compute:
         run_dir.mkdir(parents=True, exist_ok=True)

@@ -303,9 +303,10 @@ def _network_section(cfg: SweepConfig, attrs: Mapping) -> str:
         "represented by a solved contact section (doped lead, clean well material) of the pool "
         "strip's width, not of the contact's own width. Disorder correlations do not cross a "
         "segment junction. For each sampled device the transmission matrix between all "
-        "contacts followed from the network of section and contact scattering matrices "
-        f"({'amplitudes' if ec.composition == 'coherent' else 'probabilities'}); device s "
-        "draws the same segments at every sweep point."
+        "contacts followed from the network of the sections' transmission and reflection "
+        "probabilities and the contacts (a wave that a metallic contact sends on into the "
+        "next section is dephased there); device s draws the same segments at every sweep "
+        "point."
     )
 
 
