@@ -261,8 +261,8 @@ def test_guard_rails_refuse_before_any_compute(tmp_path, replace, message):
     assert not (tmp_path / "net").exists()  # nothing computed, no directory made
 
 
-def test_gate_that_pushes_an_edge_out_of_the_gap_is_refused(tmp_path):
-    # the drawn H-bar scaled up twice (its 200 nm arms are below the width guard rail)
+def gated_config(tmp_path, sweep: str, disorder: str = "", extra: str = ""):
+    """The drawn gated H-bar scaled up twice (its 200 nm arms are below the width guard)."""
     src = json.loads(open("geometries/tarn-hbar-A.geojson").read())
 
     def scale(obj):
@@ -273,15 +273,40 @@ def test_gate_that_pushes_an_edge_out_of_the_gap_is_refused(tmp_path):
     for feature in src["features"]:
         feature["geometry"]["coordinates"] = scale(feature["geometry"]["coordinates"])
     (tmp_path / "big.geojson").write_text(json.dumps(src))
-    text = NETWORK_CONFIG.format(name="gated", directory=str(tmp_path / "gated"), disorder="")
+    text = NETWORK_CONFIG.format(name="gated", directory=str(tmp_path / "gated"),
+                                 disorder=disorder)
     text = text.replace('template = "hbar"\nparameters = { length = 600.0, width = 300.0, '
                         'arm_length = 450.0, arm_width = 300.0 }', 'file = "big.geojson"')
     text = text.replace("[sweep]\nenergy = [-2.0, 2.0]",
-                        '[gates]\nlever_arm = 8.0\ndriven = ["TG"]\n\n[sweep]\nenergy = -2.0\n'
-                        "gate_voltage = [0.0, 2.0]")
-    cfg = parse_config(text, base_dir=tmp_path)
+                        f'{extra}[gates]\nlever_arm = 8.0\ndriven = ["TG"]\n\n[sweep]\n{sweep}')
+    return parse_config(text, base_dir=tmp_path)
+
+
+def test_gate_that_pushes_an_edge_out_of_the_gap_is_refused(tmp_path):
+    cfg = gated_config(tmp_path, "energy = -2.0\ngate_voltage = [0.0, 2.0]")
     with pytest.raises(ModelError, match="under gate.*TG.*gate voltage 2 V"):
         plan_network(cfg)
+
+
+def test_every_sweep_axis_and_metallic_contacts_run_through_the_model(tmp_path):
+    cfg = gated_config(
+        tmp_path, "energy = -2.0\ngate_voltage = [-0.25, 0.25]\nb_perp = [0.0, 0.5]\n"
+        "disorder_strength = [0.0, 1.0]", disorder=MAGNETIC, extra="[contacts]\ndoping = 25.0\n\n")
+    res = run_network(cfg, progress=False)
+    s = res["summary"]
+    assert dict(s["mean"].sizes) == {"geometry": 1, "disorder_strength": 2, "b_perp": 2,
+                                     "gate_voltage": 2, "energy": 1, "measurement": 3}
+    assert int(s["n_samples"].min()) == cfg.edges.sequences
+    # per field and strength: ungated edges along x and y at -2 meV, the gated bridge edges
+    # (along x only) at E - U = -2 -+ 2 meV
+    assert len(res["plan"].pool_keys(cfg)) == (2 + 2) * 2 * 2
+    clean = s.sel(disorder_strength=0.0, b_perp=0.0)
+    # metallic contacts reflect a little, so the clean device is close to, not at, the ideal
+    r1423 = clean["mean"].sel(measurement="R14,23")
+    assert np.all(np.abs(r1423 - 0.25) < 0.02) and np.all(np.abs(r1423 - 0.25) > 1e-6)
+    np.testing.assert_allclose(clean["std"], 0.0, atol=1e-9)
+    dirty = s.sel(disorder_strength=1.0)["mean"].sel(measurement="R14,23")
+    assert float(dirty.min()) > float(r1423.max())
 
 
 # --------------------------------------------------------------------------- the stage
