@@ -414,3 +414,13 @@ def test_commands_run_status_report_of_an_edges_config(tmp_path, capsys):
     figures = sorted(p.name for p in (package / "figures").iterdir())
     assert any(f.startswith("fig-vs-energy-R14-23") for f in figures)
     assert not any(f.startswith(("fig-device", "fig-current")) for f in figures)
+
+
+def test_an_edges_run_never_writes_into_a_direct_runs_directory(tmp_path):
+    cfg = network_config(tmp_path)
+    (cfg.run_dir / "samples.zarr").mkdir(parents=True)
+    (cfg.run_dir / "lstar.json").write_text("{}")
+    with pytest.raises(ConfigError, match="own directory"):
+        run_network(cfg, progress=False)
+    assert (cfg.run_dir / "lstar.json").read_text() == "{}"
+    assert not (cfg.run_dir / POOLS_STORE).exists()

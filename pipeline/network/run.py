@@ -53,7 +53,7 @@ from pipeline.timestamps import utc_now
 from pipeline.transport.environment import describe
 from pipeline.transport.landauer import parse_measurement
 
-__all__ = ["run_network", "network_samples", "network_status", "POOLS_STORE", "SAMPLES_STORE",
+__all__ = ["run_network", "network_samples", "contact_nodes", "network_status", "POOLS_STORE", "SAMPLES_STORE",
            "MODEL"]
 
 #: Name of the run's store of edge-network pools (beside ``samples.zarr``).
@@ -220,7 +220,19 @@ def _measure(cfg, plan, T: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return vals, status
 
 
-def network_samples(cfg: SweepConfig, plan: NetworkPlan, pool_sets: dict, *, maps=None):
+def contact_nodes(cfg: SweepConfig, plan: NetworkPlan, pool_sets: dict) -> dict:
+    """The contacts as network nodes at every (energy, field): ``{(E, B): [ContactNode]}``."""
+    some = next(iter(pool_sets.values()))
+    out = {}
+    for e in cfg.axes["energy"]:
+        for b in cfg.axes["b_perp"]:
+            key = (float(e), float(b), float(cfg.axes["disorder_strength"][0]), 0)
+            out[(float(e), float(b))] = _contact_nodes(plan, pool_sets.get(key, some))
+    return out
+
+
+def network_samples(cfg: SweepConfig, plan: NetworkPlan, pool_sets: dict, *, maps=None,
+                    nodes_at: dict | None = None):
     """Sampled devices of every sweep point as a dataset with the sample store's layout.
 
     Parameters
@@ -232,6 +244,8 @@ def network_samples(cfg: SweepConfig, plan: NetworkPlan, pool_sets: dict, *, map
     maps : dict, optional
         ``{key: segment map}``: a bootstrap resampling of each pool (see
         :func:`pipeline.network.solve.composed_section_parts`).
+    nodes_at : dict, optional
+        The contact nodes (:func:`contact_nodes`), computed here when not given.
 
     Returns
     -------
@@ -254,11 +268,8 @@ def network_samples(cfg: SweepConfig, plan: NetworkPlan, pool_sets: dict, *, map
             n_max = max(plan.parts[g][s][p].n_segments for g in range(n_geo))
             idx[(s, p)] = draw_edge_samples(cfg.run.seed, s, p, cfg.edges.sequences, n_max,
                                             2 * some.n_segments)
-    nodes_at = {}
-    for e in cfg.axes["energy"]:
-        for b in cfg.axes["b_perp"]:
-            key = (float(e), float(b), float(cfg.axes["disorder_strength"][0]), 0)
-            nodes_at[(float(e), float(b))] = _contact_nodes(plan, pool_sets.get(key, some))
+    if nodes_at is None:
+        nodes_at = contact_nodes(cfg, plan, pool_sets)
     T = _point_transmissions(cfg, plan, pool_blocks, nodes_at, idx, maps)
     vals, status = _measure(cfg, plan, T)
     axes = cfg.axes
@@ -292,13 +303,13 @@ def network_samples(cfg: SweepConfig, plan: NetworkPlan, pool_sets: dict, *, map
     return ds
 
 
-def _pool_sem(cfg, plan, pool_sets, resamples: int):
+def _pool_sem(cfg, plan, pool_sets, resamples: int, nodes_at: dict):
     """Standard error of every point's mean measurement from resampling the pools."""
     rng = np.random.default_rng(np.random.SeedSequence([int(cfg.run.seed), 0xED6E]))
     means = []
     for _ in range(resamples):
         maps = {k: rng.integers(0, p.n_segments, size=p.n_segments) for k, p in pool_sets.items()}
-        ds = network_samples(cfg, plan, pool_sets, maps=maps)
+        ds = network_samples(cfg, plan, pool_sets, maps=maps, nodes_at=nodes_at)
         good = ds["status"] == int(SampleStatus.DONE)
         means.append(ds["measurements"].where(good).mean("realisation"))
     import xarray as xr  # heavy optional dependency, only needed for the result
@@ -347,6 +358,13 @@ def run_network(cfg: SweepConfig, run_dir: str | Path | None = None, *, client=N
     if cfg.edges is None:
         raise ConfigError("the config has no [edges] table; add one (see docs/edge-network.md)")
     run_dir = Path(run_dir) if run_dir is not None else cfg.run_dir
+    if (run_dir / "samples.zarr").exists():
+        raise ConfigError(
+            f"the run directory {str(run_dir)!r} holds a direct run's sample store "
+            "(samples.zarr); the edge-network model writes lstar.json and figures there too "
+            "and would replace the direct run's. Give the [edges] run its own directory, e.g. "
+            "[run] directory = \"runs/{name}-edges\""
+        )
     plan = plan_network(cfg, width_guard=width_guard)  # every guard rail before compute
     keys = plan.pool_keys(cfg)
     if compute:
@@ -357,7 +375,8 @@ def run_network(cfg: SweepConfig, run_dir: str | Path | None = None, *, client=N
     _say(f"{len(keys)} pool(s) of {cfg.edges.segments} segments; {cfg.edges.sequences} sampled "
          f"devices per sweep point", progress)
     pool_sets = _solve_pools(cfg, plan, store, keys, client, chunk, progress, compute)
-    samples = network_samples(cfg, plan, pool_sets)
+    nodes_at = contact_nodes(cfg, plan, pool_sets)
+    samples = network_samples(cfg, plan, pool_sets, nodes_at=nodes_at)
     facts = {
         "model": MODEL, "composition": cfg.edges.composition,
         "pool_width_nm": plan.pool_width, "segment_length_nm": plan.segment_length,
@@ -380,7 +399,7 @@ def run_network(cfg: SweepConfig, run_dir: str | Path | None = None, *, client=N
                      if failed else [])})
     summary = summarize(edge_store.path, config_dir=cfg.base_dir, temperatures=temperatures)
     if cfg.edges.pool_resamples:
-        sem = _pool_sem(cfg, plan, pool_sets, cfg.edges.pool_resamples)
+        sem = _pool_sem(cfg, plan, pool_sets, cfg.edges.pool_resamples, nodes_at)
         summary["sem_pool"] = sem.transpose(*summary["mean"].dims)
         summary["sem_pool"].attrs.update(
             long_name="standard error of the mean from resampling the segment pools",

@@ -14,9 +14,10 @@ from pathlib import Path
 
 from pipeline.analysis.lstar import longest_ballistic_length, save_lstar
 from pipeline.analysis.summary import save_summary, summarize
+from pipeline.errors import ConfigError
 from pipeline.longedges.run import run_concatenation
 from pipeline.network.plan import plan_network
-from pipeline.network.run import run_network
+from pipeline.network.run import SAMPLES_STORE, run_network
 from pipeline.output.figures import load_run, make_figures
 from pipeline.output.longedge_figures import plot_concatenated
 from pipeline.output.package import make_package
@@ -103,6 +104,12 @@ def build_report(
                                 progress=progress)
     if cfg.edges is not None:
         return _network_report(cfg, run_dir, client, run, temperatures, tolerance, progress)
+    if (run_dir / SAMPLES_STORE).exists():
+        raise ConfigError(
+            f"the run directory {str(run_dir)!r} holds an edge-network run ({SAMPLES_STORE}); "
+            "a direct report writes lstar.json and figures there too and would replace its "
+            "results. Give the direct run its own [run] directory"
+        )
     store_path = run_dir / "samples.zarr"
     if run:
         run_sweep(cfg, client=client, store_path=store_path, progress=progress)
