@@ -52,7 +52,7 @@ evanescent_tolerance = 1e-4
 """
 
 #: The breakdown sketch: bridge widths (nm) below and at the guard rail (214 nm).
-BRIDGE_WIDTHS = (300.0, 200.0, 150.0, 100.0)
+BRIDGE_WIDTHS = (300.0, 200.0, 150.0, 100.0, 70.0, 50.0)
 
 BREAKDOWN = """
 [run]
@@ -156,12 +156,16 @@ def main(argv=None) -> int:
               f"| {r['direct_mean']:.3f} ± {r['direct_sem']:.3f} "
               f"| {r['network_mean']:.3f} ± {r['network_err']:.3f} | {r['z']:+.2f} |")
     if sketch:
-        print("\n| bridge width (nm) | quantity | ideal | direct | network | z |")
+        print("\n| bridge width (nm) | quantity | ideal | direct - ideal | network - ideal "
+              "| (direct - network) / error |")
         print("|---|---|---|---|---|---|")
         for r in sketch:
+            err = math.hypot(r["direct_sem"], r["network_err"])
+            diff = r["direct_mean"] - r["network_mean"]
+            z = f"{diff / err:+.1f}" if err > 1e-9 else "(no spread)"
             print(f"| {r['bridge_width_nm']:g} | {r['measurement']} | {r['quantised']:.4g} "
-                  f"| {r['direct_mean']:.4f} ± {r['direct_sem']:.4f} "
-                  f"| {r['network_mean']:.4f} ± {r['network_err']:.4f} | {r['z']:+.1f} |")
+                  f"| {r['direct_mean'] - r['quantised']:+.2e} ± {r['direct_sem']:.1e} "
+                  f"| {r['network_mean'] - r['quantised']:+.2e} ± {r['network_err']:.1e} | {z} |")
     return 0
 
 
