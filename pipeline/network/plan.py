@@ -319,6 +319,14 @@ def plan_network(cfg: SweepConfig, *, width_guard: bool = True) -> NetworkPlan:
         widths.append(w)
         dists.append(d)
         parts.append(tuple(_parts(s, l_d, where) for s in secs))
+    kinds = [[[(p.gates, p.axis) for p in sec] for sec in per_geo] for per_geo in parts]
+    for g, k in enumerate(kinds):
+        if k != kinds[0]:
+            raise ModelError(
+                f"the edge sections change their pieces (direction or gates) along the geometry "
+                f"axis (at {cfg.sweep.geometry.parameter} = {axes['geometry'][g]:g} nm), so sampled "
+                "devices cannot be nested along it; sweep a parameter that only changes lengths"
+            )
     doping = cfg.contacts.doping
     dop = tuple(float(doping.get(n, 0.0)) if isinstance(doping, dict) else float(doping)
                 for n in names)

@@ -24,6 +24,7 @@ from __future__ import annotations
 import dataclasses
 import hashlib
 import json
+import math
 import sys
 import warnings
 from pathlib import Path
@@ -91,7 +92,10 @@ def pools_hash(cfg: SweepConfig, plan: NetworkPlan) -> str:
 
 
 def _solve_pools(cfg, plan, store, keys, client, chunk, progress, compute) -> dict:
-    """Every pool the run needs: stored ones loaded, missing ones solved and stored."""
+    """Every pool the run needs: stored ones loaded, missing ones solved and stored.
+
+    The chunks of all missing pools are submitted at once (no idle workers between pools);
+    each pool is stored as soon as its chunks are in."""
     ec = cfg.edges
     out, todo = {}, []
     for key in keys:
@@ -106,25 +110,34 @@ def _solve_pools(cfg, plan, store, keys, client, chunk, progress, compute) -> di
             f"{pool_name(todo[0])}); compute them with `helisweep run CONFIG` or "
             "`helisweep report CONFIG --run`"
         )
+    if not todo:
+        return out
+    if chunk is None:  # few tasks per pool (each builds the strip once), enough for the workers
+        workers = len(client.scheduler_info().get("workers", {})) if client is not None else 1
+        chunk = max(8, math.ceil(ec.segments / (2 * max(1, workers))))
     args = (cfg.material.parameters(), cfg.lattice.constant, plan.pool_width,
             ec.segment_length, disorder_terms(cfg))
     starts = list(range(0, ec.segments, chunk))
+    # the plan has warned about a buffer above the tolerance: the workers need not
+    tol = min(0.999, max(ec.evanescent_tolerance, 1.001 * plan.evanescent_bound))
+    jobs = {}
     for key in todo:
         e, b, s, axis = key
-        # the plan has warned about a buffer above the tolerance: the workers need not
         kw = dict(energy=e, seed=cfg.run.seed, b_perp=b, strength=s, buffer=plan.buffer,
-                  evanescent_tolerance=min(0.999, max(ec.evanescent_tolerance,
-                                                      1.001 * plan.evanescent_bound)),
-                  quarter_turns=axis)
-        n_of = {k0: min(chunk, ec.segments - k0) for k0 in starts}
+                  evanescent_tolerance=tol, quarter_turns=axis)
+        calls = [(k0, min(chunk, ec.segments - k0)) for k0 in starts]
         if client is None:
-            parts = [pools.segment_smatrices(*args, n_segments=n_of[k0], first_realisation=k0,
-                                             **kw) for k0 in starts]
+            jobs[key] = [(pools.segment_smatrices, args, dict(n_segments=n, first_realisation=k0,
+                                                              **kw)) for k0, n in calls]
         else:
-            futures = [client.submit(pools.segment_smatrices, *args, n_segments=n_of[k0],
-                                     first_realisation=k0, pure=False, retries=2, **kw)
-                       for k0 in starts]
-            parts = client.gather(futures)
+            jobs[key] = [client.submit(pools.segment_smatrices, *args, n_segments=n,
+                                       first_realisation=k0, pure=False, retries=2, **kw)
+                         for k0, n in calls]
+    for key in todo:
+        if client is None:
+            parts = [f(*a, **k) for f, a, k in jobs[key]]
+        else:
+            parts = client.gather(jobs[key])
         pool = pools.merge_segments(parts)
         storage.save_segments(pool, store.group, name=pool_name(key))
         out[key] = pool
@@ -318,7 +331,7 @@ def _pool_sem(cfg, plan, pool_sets, resamples: int, nodes_at: dict):
 
 
 def run_network(cfg: SweepConfig, run_dir: str | Path | None = None, *, client=None,
-                progress: bool = True, chunk: int = 8, fresh: bool = False,
+                progress: bool = True, chunk: int | None = None, fresh: bool = False,
                 compute: bool = True, tolerance: float = 0.05,
                 temperatures: tuple[float, ...] = (), width_guard: bool = True) -> dict:
     """Pools, sampled devices, ``edges.nc`` and L* of a config's ``[edges]`` table.
@@ -334,7 +347,8 @@ def run_network(cfg: SweepConfig, run_dir: str | Path | None = None, *, client=N
     progress : bool, optional
         Print progress to stderr.
     chunk : int, optional
-        Segments per worker task.
+        Segments per worker task; default: enough for two tasks per worker and pool (at
+        least 8), since every task builds the pool strip once.
     fresh : bool, optional
         Move pools of a different model aside (inside the pool store) instead of refusing.
     compute : bool, optional
