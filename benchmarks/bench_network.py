@@ -101,6 +101,7 @@ def main(argv=None) -> int:
                 text = (ROOT / path).read_text()
                 if args.smoke:
                     text = (text.replace("segments = 200", "segments = 4")
+                            .replace("segments = 128", "segments = 4")
                             .replace("sequences = 1000", "sequences = 16")
                             .replace("pool_resamples = 50", "pool_resamples = 2"))
                 cfg = parse_config(text, source=path, base_dir=(ROOT / path).parent)
