@@ -133,7 +133,7 @@ def _ring(T_sections, n):
     T = np.asarray(T_sections, float)
     blocks = (1 - T, T, T, 1 - T)  # probabilities: R, T, T', R'
     return network_transmissions(blocks, list(range(n)), [(i + 1) % n for i in range(n)],
-                                 [ABSORBING] * n, coherent=False)
+                                 [ABSORBING] * n)
 
 
 def test_clean_edges_give_the_quantised_nonlocal_values():
@@ -174,7 +174,7 @@ def test_network_conserves_current_with_reflecting_contacts():
         nodes.append(ContactNode(np.sqrt(p).astype(complex), np.eye(2) * (1 - leak) + 0j,
                                  np.eye(2) * (1 - leak) + 0j))
     T = network_transmissions((r, t, t, r), list(range(n)), [(i + 1) % n for i in range(n)],
-                              nodes, coherent=False)
+                              nodes)
     lead_reflection = 2 * leaks  # a unitary contact reflects into its own lead what it passes on
     np.testing.assert_allclose(T.sum(axis=0), 2.0 - lead_reflection, atol=1e-12)
     np.testing.assert_allclose(T.sum(axis=1), 2.0 - lead_reflection, atol=1e-12)

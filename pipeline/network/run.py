@@ -206,7 +206,7 @@ def _point_transmissions(cfg, plan, pool_blocks, nodes_at, idx, maps=None) -> np
                         out[:, g, js, ib, iv, ie] = network_transmissions(
                             tuple(np.real(x) for x in sec),
                             [x.start_contact for x in secs], [x.end_contact for x in secs],
-                            nodes, coherent=False)
+                            nodes)
     return out
 
 

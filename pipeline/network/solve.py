@@ -25,9 +25,11 @@ everything: ``n_ii = 0``, ``a = b = 1``. A metallic (doped) contact is read from
 contact section (doped lead | clean device | device lead) by :func:`contact_node`.
 
 :func:`network_transmissions` then gives the transmission matrix ``T[i, j]`` (from contact
-``j`` to contact ``i``, summed over modes) of the whole network: coherently, from the
-amplitudes (waves reflected by a contact keep their phase), or incoherently, from the
-probabilities (full dephasing). The multi-terminal resistances follow from
+``j`` to contact ``i``, summed over modes) of the whole network from the sections'
+probabilities (each section itself composed coherently or not, as configured): a wave that a
+metallic contact sends on into the next section is dephased at the contact, since the mode
+phase conventions on either side of a contact are not physical and a metallic contact is a
+reservoir. The multi-terminal resistances follow from
 :mod:`pipeline.transport.landauer` (Buttiker, Phys. Rev. B 38, 9375 (1988)).
 """
 
@@ -165,22 +167,20 @@ def draw_edge_samples(seed: int, section: int, part: int, n_devices: int, n_max:
                           pool_size)
 
 
-def compose_runs(parts: Sequence[tuple], *, coherent: bool = True) -> tuple:
+def compose_runs(parts: Sequence[tuple]) -> tuple:
     """Join the composed parts of one section (left to right) without scattering between them.
 
     Parameters
     ----------
     parts : sequence of tuple
-        Block tuples ``(r, t, tp, rp)`` of shape (batch, 1, 1), amplitudes or probabilities.
-    coherent : bool
-        Ignored by the algebra (the star product serves both); kept for the reader.
+        Block tuples ``(r, t, tp, rp)`` of shape (batch, 1, 1), amplitudes or probabilities
+        (the star product serves both).
 
     Returns
     -------
     tuple
         The composed block tuple.
     """
-    del coherent
     acc = parts[0]
     for p in parts[1:]:
         acc = star_product(acc, p)
@@ -200,52 +200,50 @@ def _node_positions(starts: np.ndarray, ends: np.ndarray, n_contacts: int):
 
 
 def network_transmissions(blocks: tuple, starts: Sequence[int], ends: Sequence[int],
-                          nodes: Sequence[ContactNode], *, coherent: bool = True) -> np.ndarray:
-    """Transmission matrix of the network of edge sections and contacts.
+                          nodes: Sequence[ContactNode]) -> np.ndarray:
+    """Transmission matrix of the network of edge sections and contacts (probabilities).
 
     Parameters
     ----------
     blocks : tuple of numpy.ndarray
-        ``(r, t, tp, rp)`` of every section, each of shape (..., K): amplitudes (coherent) or
-        probabilities ``|.|^2`` (incoherent), in the walking orientation.
+        ``(R, T, T', R')`` of every section, each of shape (..., K): the probabilities
+        ``|r|^2, |t|^2, |t'|^2, |r'|^2`` in the walking orientation.
     starts, ends : sequence of int
         Start and end contact of each section.
     nodes : sequence of ContactNode
-        One per contact.
-    coherent : bool
-        Amplitudes (True) or probabilities (False).
+        One per contact; only probabilities of it enter (``|n_ii|^2`` and the diagonals of
+        ``a`` and ``b``).
 
     Returns
     -------
     numpy.ndarray
-        ``T[..., i, j]``, from contact ``j`` to contact ``i``; the diagonal holds the
-        reflection back into the same contact.
+        ``T[..., i, j]``, from contact ``j`` to contact ``i``; the diagonal holds what returns
+        into the same contact through the edges.
+
+    Notes
+    -----
+    With ``alpha`` the waves entering the sections and ``beta`` those leaving them,
+    ``beta = S alpha`` (sections) and ``alpha = P beta + emission`` (contacts), so
+    ``beta = (1 - S P)^-1 S emission``; contact ``i`` absorbs ``a_i`` of what arrives.
     """
-    r, t, tp, rp = (np.asarray(x) for x in blocks)
+    r, t, tp, rp = (np.asarray(x, dtype=float) for x in blocks)
     k = r.shape[-1]
     n_c = len(nodes)
     ins, outs = _node_positions(np.asarray(starts), np.asarray(ends), n_c)
     if np.any(ins < 0) or np.any(outs < 0):
         raise ModelError("every contact needs an edge section arriving and one leaving; "
                          "the sections do not form closed rings")
-    dtype = complex if coherent else float
-    s = np.zeros(r.shape[:-1] + (2 * k, 2 * k), dtype)
+    s = np.zeros(r.shape[:-1] + (2 * k, 2 * k))
     ix = np.arange(k)
     s[..., 2 * ix, 2 * ix] = t
     s[..., 2 * ix, 2 * ix + 1] = rp
     s[..., 2 * ix + 1, 2 * ix] = r
     s[..., 2 * ix + 1, 2 * ix + 1] = tp
-    p = np.zeros((2 * k, 2 * k), dtype)
+    p = np.zeros((2 * k, 2 * k))
     for c, node in enumerate(nodes):
-        n_ii = node.n_ii if coherent else np.abs(node.n_ii) ** 2
-        p[np.ix_(outs[c], ins[c])] += n_ii
+        p[np.ix_(outs[c], ins[c])] += np.abs(node.n_ii) ** 2
     x = np.linalg.solve(np.eye(2 * k) - s @ p, s)
     y = x[..., ins[:, :, None, None], outs[None, None, :, :]]  # (..., i, a, j, e)
-    if coherent:
-        a = np.stack([nd.a for nd in nodes])
-        b = np.stack([nd.b for nd in nodes])
-        tmat = np.einsum("iab,...ibje,jef,...iajf->...ij", a, y, b, y.conj(), optimize=True)
-        return tmat.real
     a = np.stack([np.real(np.diag(nd.a)) for nd in nodes])
     b = np.stack([np.real(np.diag(nd.b)) for nd in nodes])
     return np.einsum("ia,...iaje,je->...ij", a, y, b, optimize=True)
