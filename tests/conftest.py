@@ -9,13 +9,14 @@ tiny_config`` (pytest puts ``tests/`` on ``sys.path``).
 
 import os
 
-import numpy as np
-import pytest
-
-from pipeline.sweep.store import SampleStatus, SampleStore
-
+# before NumPy loads OpenBLAS: the test process solves with one BLAS thread, like the workers
 os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 os.environ.setdefault("OMP_NUM_THREADS", "1")
+
+import numpy as np  # noqa: E402
+import pytest  # noqa: E402
+
+from pipeline.sweep.store import SampleStatus, SampleStore  # noqa: E402
 
 TINY_CONFIG = """
 [run]

@@ -96,7 +96,8 @@ class NetworkPlan:
     def edge_energy(self, energy: float, gate_index: int, gates: tuple[str, ...]) -> float:
         """Fermi energy relative to the local bands on an edge part: ``E - sum U_gate``."""
         pots = self.gate_potentials[gate_index]
-        return float(energy) - sum(pots.get(g, 0.0) for g in gates)
+        # rounded to 1e-9 meV, so that E - U reached two ways names one pool
+        return round(float(energy) - sum(pots.get(g, 0.0) for g in gates), 9)
 
     def pool_keys(self, cfg: SweepConfig) -> list[tuple[float, float, float, int]]:
         """The (edge energy, field, strength, axis) of every pool the run needs, sorted.
