@@ -6,6 +6,7 @@ from __future__ import annotations
 
 import json
 import math
+import warnings
 
 import numpy as np
 import pytest
@@ -15,7 +16,7 @@ from shapely.geometry import LineString, Polygon
 from pipeline.device.outline import Contact, Device, perimeter_order
 from pipeline.device.readers import load_device
 from pipeline.device.templates import h_bar, hall_bar, two_terminal_strip
-from pipeline.errors import ConfigError, ModelError
+from pipeline.errors import ConfigError, ModelError, NetworkWarning
 from pipeline.longedges.pools import QUARTER_TURN, segment_smatrices, turned_onsite
 from pipeline.network.plan import plan_network
 from pipeline.network.run import POOLS_STORE, network_status, run_network
@@ -254,6 +255,7 @@ def test_edges_lengths_must_sit_on_the_lattice(tmp_path):
     ({"segment_length = 350.0": "segment_length = 1600.0", "evanescent_tolerance = 1e-2":
       "evanescent_tolerance = 1e-2\nwidth = 300.0"}, "less than half a segment"),
 ])
+@pytest.mark.filterwarnings("ignore::pipeline.errors.NetworkWarning")  # rounding, not tested here
 def test_guard_rails_refuse_before_any_compute(tmp_path, replace, message):
     cfg = network_config(tmp_path, **replace)
     with pytest.raises(ModelError, match=message):
@@ -292,7 +294,11 @@ def test_every_sweep_axis_and_metallic_contacts_run_through_the_model(tmp_path):
     cfg = gated_config(
         tmp_path, "energy = -2.0\ngate_voltage = [-0.25, 0.25]\nb_perp = [0.0, 0.5]\n"
         "disorder_strength = [0.0, 1.0]", disorder=MAGNETIC, extra="[contacts]\ndoping = 25.0\n\n")
-    res = run_network(cfg, progress=False)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", NetworkWarning)
+        res = run_network(cfg, progress=False)
+    assert any(issubclass(w.category, NetworkWarning)
+               and "400 nm long but modelled by 3 segment" in str(w.message) for w in caught)
     s = res["summary"]
     assert dict(s["mean"].sizes) == {"geometry": 1, "disorder_strength": 2, "b_perp": 2,
                                      "gate_voltage": 2, "energy": 1, "measurement": 3}
