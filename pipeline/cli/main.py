@@ -39,7 +39,8 @@ from pipeline.network.sections import section_table
 from pipeline.output.preview import preview_device
 from pipeline.output.report import build_report
 from pipeline.physics.materials import get_preset
-from pipeline.sweep.clusters import open_client
+from pipeline.precision import plan_precision, precision_status, run_to_precision
+from pipeline.sweep.clusters import allocation_client, open_client
 from pipeline.sweep.config import load_config
 from pipeline.sweep.driver import run_on_cluster
 from pipeline.sweep.runmodel import device_for
@@ -134,12 +135,41 @@ def _cmd_preflight(args) -> int:
 def _cmd_run(args) -> int:
 
     cfg = load_config(args.config)
+    plan = plan_precision(cfg)  # a target this run cannot have is refused before anything starts
     if cfg.edges is not None:
         return _run_network(cfg, args)
-    store = run_on_cluster(cfg, cluster_overrides(args), workers=args.workers,
-                           store_path=args.store, fresh=args.fresh, progress=not args.quiet)
+    if plan is not None:
+        with open_client(cfg, cluster_overrides(args), workers=args.workers,
+                         store_path=args.store) as session:
+            store = run_to_precision(cfg, client=session.client, store_path=args.store,
+                                     fresh=args.fresh, progress=not args.quiet,
+                                     max_in_flight=session.max_in_flight)
+    else:
+        store = run_on_cluster(cfg, cluster_overrides(args), workers=args.workers,
+                               store_path=args.store, fresh=args.fresh, progress=not args.quiet)
     c = store.counts()
-    print(f"{store.path}: {c['done']} done, {c['failed']} failed, {c['missing']} missing of {c['total']}")
+    print(f"{store.path}: {c['done']} done, {c['failed']} failed, {c['missing']} missing of {c['total']}"
+          + (f" (precision target: `helisweep status {args.config}` shows each point)"
+             if plan is not None else ""))
+    return 0
+
+
+def _cmd_run_in_allocation(args, plain) -> int:
+    """``helisweep run-in-allocation``: with a precision target the stopping loop runs on the
+    job's cluster; otherwise ``plain`` (the batch-mode command of :mod:`pipeline.cli.slurm`)."""
+    cfg = load_config(args.config)
+    plan = plan_precision(cfg)
+    if plan is None or cfg.edges is not None:
+        return plain(args)
+    with allocation_client(args.scheduler_file, expected_workers=args.expected_workers,
+                           timeout=args.timeout) as session:
+        store = run_to_precision(cfg, client=session.client, store_path=args.store,
+                                 fresh=args.fresh, progress=args.progress,
+                                 max_in_flight=session.max_in_flight)
+    c = store.counts()
+    print(f"helisweep: {store.path}: {c['done']} done, {c['failed']} failed, "
+          f"{c['missing']} missing of the requested samples (precision target)",
+          file=sys.stderr, flush=True)
     return 0
 
 
@@ -181,14 +211,19 @@ def _preflight_network(cfg) -> int:
 def _cmd_status(args) -> int:
 
     target = Path(args.target)
+    config_dir = None
     if target.suffix == ".toml":
         cfg = load_config(target)
         if cfg.edges is not None:
             print(network_status(cfg))
             return 0
         target = cfg.run_dir / "samples.zarr"
+        config_dir = cfg.base_dir
     store = SampleStore.open(target)
     print(store.report(max_failures=args.failures))
+    text = precision_status(store, config_dir=config_dir, max_points=args.points)
+    if text:
+        print(text)
     return 0
 
 
@@ -251,11 +286,15 @@ def build_parser() -> argparse.ArgumentParser:
     q.set_defaults(func=_cmd_run)
 
     add_slurm_script_command(sub)
-    add_run_in_allocation_command(sub)
+    q = add_run_in_allocation_command(sub)
+    plain = q.get_default("func")
+    q.set_defaults(func=lambda args, plain=plain: _cmd_run_in_allocation(args, plain))
 
     q = sub.add_parser("status", help="what a run's store holds and what is left")
     q.add_argument("target", help="a config file (.toml) or a store directory")
     q.add_argument("--failures", type=int, default=10, help="failed samples to list (default 10)")
+    q.add_argument("--points", type=int, default=12,
+                   help="with a precision target: points to list, farthest from it first (default 12)")
     q.set_defaults(func=_cmd_status)
 
     q = sub.add_parser(

@@ -44,6 +44,10 @@ class _Strict(BaseModel):
     model_config = ConfigDict(extra="forbid", frozen=True)
 
 
+#: ``[run] max_realisations`` when a precision target is set and it is not given
+DEFAULT_MAX_REALISATIONS = 2000
+
+
 class RunSection(_Strict):
     #: run name (used in file names and provenance)
     name: str = Field(min_length=1, max_length=80, pattern=r"^[A-Za-z0-9_.\-]+$")
@@ -53,6 +57,51 @@ class RunSection(_Strict):
     realisations: int = Field(ge=1, le=10_000_000)
     #: run directory (holds samples.zarr, summaries, figures); relative to the working directory
     directory: str = "runs/{name}"
+    #: stop adding realisations at a sweep point once the half-width of the 95 % interval of
+    #: the mean of every measurement is at most this (each in the measurement's own unit);
+    #: ``realisations`` is then the first block and the step (see :mod:`pipeline.precision`)
+    target_ci: float | None = Field(default=None, gt=0, allow_inf_nan=False)
+    #: stop once the relative half-width of the L* interval, (high - low) / 2 / L*, is at most
+    #: this at every (strength, field, gate, energy) point of a length sweep
+    target_lstar_ci: float | None = Field(default=None, gt=0, lt=1, allow_inf_nan=False)
+    #: most realisations per sweep point with a target (default 2000); refused without a target
+    max_realisations: int | None = Field(default=None, ge=1, le=10_000_000)
+
+    @model_validator(mode="after")
+    def _targets(self):
+        if self.max_realisations is not None and not self.has_target:
+            raise ValueError(
+                f"max_realisations = {self.max_realisations!r} bounds the realisations added to "
+                f"reach a precision target, but no target is set; add target_ci (or "
+                f"target_lstar_ci), or drop max_realisations and set realisations"
+            )
+        if self.has_target and self.realisation_limit < self.realisations:
+            given = ("max_realisations = " f"{self.max_realisations!r}" if self.max_realisations
+                     is not None else f"the default max_realisations = {DEFAULT_MAX_REALISATIONS}")
+            raise ValueError(
+                f"{given} is below realisations = {self.realisations!r} (the first block); "
+                f"set max_realisations >= realisations"
+            )
+        if self.has_target and self.realisations < 2:
+            raise ValueError(
+                f"realisations = {self.realisations!r}: with a precision target it is the first "
+                f"block, after which the interval is judged, and an interval needs at least 2 "
+                f"samples; set realisations >= 2 (e.g. 20)"
+            )
+        return self
+
+    @property
+    def has_target(self) -> bool:
+        """Whether a precision target (``target_ci`` or ``target_lstar_ci``) is set."""
+        return self.target_ci is not None or self.target_lstar_ci is not None
+
+    @property
+    def realisation_limit(self) -> int:
+        """Most realisations per point: ``max_realisations`` (default
+        :data:`DEFAULT_MAX_REALISATIONS` with a target), else ``realisations``."""
+        if not self.has_target:
+            return self.realisations
+        return self.max_realisations if self.max_realisations is not None else DEFAULT_MAX_REALISATIONS
 
 
 class DeviceSection(_Strict):
@@ -598,15 +647,17 @@ def _check_edges(cfg: SweepConfig, source: str) -> None:
 def config_hash(cfg: SweepConfig) -> str:
     """SHA-256 of everything that determines the numbers in the sample store.
 
-    The run name, directory, number of realisations, execution and cluster settings are
-    excluded:
+    The run name, directory, number of realisations, the precision targets (``target_ci``,
+    ``target_lstar_ci``, ``max_realisations``: they choose how many realisations, not what
+    a realisation is), execution and cluster settings are excluded:
     they do not change a single sample (realisation r is the same sample whatever the total),
     so a run may be renamed, extended with more realisations or rerun with more workers and
     still resume.
     """
     data = cfg.model_dump(mode="json",
                           exclude={"execution": True, "cluster": True, "concatenation": True,
-                                   "edges": True, "run": {"name", "directory", "realisations"}})
+                                   "edges": True, "run": {"name", "directory", "realisations", "target_ci",
+                                                  "target_lstar_ci", "max_realisations"}})
     # the hash predates the rename of "[measure] report" to "labels"; hashing the old name
     # keeps every existing store resumable
     data["measure"] = {"report": data["measure"].pop("labels"), **data["measure"]}

@@ -7,6 +7,10 @@ resumes the store, keeps a bounded window of tasks in flight and writes each blo
 finishes: workers return small arrays and the driver is the store's single writer, so Zarr
 writes stay off the workers' critical path and a killed run loses at most the blocks in
 flight. The numbers do not depend on task order, batching or worker count.
+
+A run with a precision target (:mod:`pipeline.precision`, above this layer) drives an open
+:class:`SweepSession` itself: it asks for realisations per sweep point
+(:meth:`SweepSession.compute` with ``requested``), judges the samples and asks for more.
 """
 
 from __future__ import annotations
@@ -14,7 +18,7 @@ from __future__ import annotations
 import sys
 import time
 from collections.abc import Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
@@ -28,7 +32,7 @@ from pipeline.sweep.store import SampleStore
 from pipeline.sweep.tasks import run_block
 from pipeline.transport.environment import describe
 
-__all__ = ['run_sweep', 'run_on_cluster', 'run_in_allocation']
+__all__ = ['run_sweep', 'run_on_cluster', 'run_in_allocation', 'open_sweep', 'SweepSession']
 
 
 @dataclass
@@ -127,48 +131,164 @@ def _points_per_realisation(cfg: SweepConfig) -> int:
     return int(np.prod([len(cfg.axes[k]) for k in ("b_perp", "gate_voltage", "energy")]))
 
 
+@dataclass
+class SweepSession:
+    """An open run: the store, the client that computes its samples, and the session's
+    task counts (from :func:`open_sweep`)."""
+
+    #: the run's configuration
+    cfg: SweepConfig
+    #: Dask client of the workers
+    client: Any
+    #: the run's sample store (the driver is its single writer)
+    store: SampleStore
+    #: workers seen when the store was opened
+    n_workers: int
+    #: progress output on standard error
+    progress: bool = True
+    #: tasks in flight at most (default four per worker)
+    max_in_flight: int | None = None
+    #: tasks run in this session
+    tasks: int = 0
+    #: samples that failed in this session
+    failed: int = 0
+    _dashboard_shown: bool = field(default=False, repr=False)
+
+    def pending(self, requested: np.ndarray | None = None) -> list:
+        """Tasks still to do: the run's realisations, or with ``requested`` (a precision
+        target) the realisations requested per point (see :meth:`compute`)."""
+        if requested is None:
+            return self.store.pending_blocks(self.cfg.run.realisations)
+        return self.store.pending_blocks(requested=requested)
+
+    def compute(self, requested: np.ndarray | None = None, *, max_tasks: int | None = None) -> int:
+        """Compute the samples still missing and write each block as it finishes.
+
+        Parameters
+        ----------
+        requested : numpy.ndarray of int, optional
+            Realisations per sweep point (geometry, disorder_strength, b_perp, gate_voltage,
+            energy): realisation ``r`` is computed at a point only when ``r`` is below its
+            request (the store grows as needed). Default: ``[run] realisations`` everywhere.
+        max_tasks : int, optional
+            Stop after submitting that many tasks (a partial run, resumed by a later call).
+
+        Returns
+        -------
+        int
+            Tasks run.
+        """
+        from dask.distributed import as_completed  # heavy: only where a cluster is used
+
+        cfg, client, store = self.cfg, self.client, self.store
+        if requested is not None:
+            requested = np.asarray(requested, dtype=np.int64)
+            store.ensure_realisations(int(requested.max()))
+        pending = self.pending(requested)
+        queue = list(pending)[: max_tasks if max_tasks is not None else None]
+        if requested is None:
+            points = _points_per_realisation(cfg)
+            samples = [len(reals) * points for _, reals in queue]
+            if self.progress:
+                print(f"store {store.path}: {store.counts()['done']} samples done, {len(pending)} "
+                      f"tasks ({sum(len(r) for _, r in pending) * points} samples) to go on "
+                      f"{self.n_workers} worker(s)", file=sys.stderr)
+        else:
+            samples = [int(sum((r < requested[g, s_]).sum() for r in reals))
+                       for (_, g, s_), reals in queue]
+            if self.progress and queue:
+                print(f"store {store.path}: {len(pending)} tasks ({sum(samples)} samples) to go "
+                      f"on {self.n_workers} worker(s)", file=sys.stderr)
+        if self.progress and not self._dashboard_shown and getattr(client, "dashboard_link", None):
+            print(f"Dask dashboard: {client.dashboard_link}", file=sys.stderr)
+            self._dashboard_shown = True
+        if not queue:
+            return 0
+        bar = _Progress(sum(samples), enabled=self.progress)
+        window = self.max_in_flight or 4 * self.n_workers
+        cfg_future = client.scatter(cfg, broadcast=True)
+        futures, ac = {}, as_completed()
+        work = list(zip(queue, samples))
+
+        def submit_next():
+            (key, reals), count = work.pop(0)
+            args = (cfg_future, key, reals)
+            if requested is not None:
+                args += (requested[key[1], key[2]],)
+            fut = client.submit(run_block, *args, retries=2, pure=False,
+                                key=f"helisweep-{key[0]}-{key[1]}-{key[2]}-{time.monotonic_ns()}")
+            futures[fut] = (key, reals, count)
+            ac.add(fut)
+
+        while work and len(futures) < window:
+            submit_next()
+        for fut in ac:
+            key, reals, count = futures.pop(fut)
+            results = fut.result()
+            _write(store, key, reals, results)
+            self.tasks += 1
+            self.failed += sum(len(r.failures) for r in results)
+            bar.update(count)
+            if work:
+                submit_next()
+        return len(queue)
+
+    def finish(self, **summary) -> SampleStore:
+        """Record the session's end (tasks, failed samples and ``summary``) in the store."""
+        self.store.finish_session({"tasks": self.tasks, "failed_samples": self.failed, **summary})
+        if self.progress and self.failed:
+            print(f"{self.failed} sample(s) failed; reasons are in the store's 'failures' "
+                  f"attribute", file=sys.stderr)
+        return self.store
+
+
+def open_sweep(cfg: SweepConfig, client, store_path: str | Path | None = None, *,
+               fresh: bool = False, progress: bool = True,
+               max_in_flight: int | None = None) -> SweepSession:
+    """Check the run on the client's workers and open (or create) its store.
+
+    Bad input is refused before any compute (:func:`pipeline.sweep.checks.validate_run`
+    and the resources of the actual workers); damaged chunks are marked for recomputation.
+
+    Parameters
+    ----------
+    cfg : SweepConfig
+        The run's configuration.
+    client : dask.distributed.Client
+        Where the samples are computed.
+    store_path : str or Path, optional
+        Default ``<run directory>/samples.zarr``.
+    fresh : bool
+        Move a store of a different configuration aside instead of refusing it.
+    progress : bool
+        Progress output on standard error.
+    max_in_flight : int, optional
+        Tasks in flight at most.
+
+    Returns
+    -------
+    SweepSession
+    """
+    path = Path(store_path) if store_path else cfg.run_dir / "samples.zarr"
+    n_workers, worker_mb = _worker_facts(client)
+    names = validate_run(cfg, n_workers, path, worker_mb)
+    store, n_workers = _open_store(cfg, client, path, names, fresh=fresh, progress=progress)
+    return SweepSession(cfg, client, store, n_workers, progress=progress,
+                        max_in_flight=max_in_flight)
+
+
 def _drive(cfg, client, path, names, *, fresh, progress, max_in_flight, max_tasks) -> SampleStore:
     """Submit the pending blocks, write each as it finishes, keep a bounded window in flight."""
-    from dask.distributed import as_completed  # heavy: only where a cluster is used
-
     store, n_workers = _open_store(cfg, client, path, names, fresh=fresh, progress=progress)
-    pending = store.pending_blocks(cfg.run.realisations)
-    points = _points_per_realisation(cfg)
-    queue = list(pending)[: max_tasks if max_tasks is not None else None]
-    if progress:
-        print(f"store {path}: {store.counts()['done']} samples done, {len(pending)} tasks "
-              f"({sum(len(r) for _, r in pending) * points} samples) to go on "
-              f"{n_workers} worker(s)", file=sys.stderr)
-        if getattr(client, "dashboard_link", None):
-            print(f"Dask dashboard: {client.dashboard_link}", file=sys.stderr)
-    bar = _Progress(sum(len(r) for _, r in queue) * points, enabled=progress)
-    n_tasks, window = len(queue), max_in_flight or 4 * n_workers
-    cfg_future = client.scatter(cfg, broadcast=True)
-    futures, ac = {}, as_completed()
-
-    def submit_next():
-        key, reals = queue.pop(0)
-        fut = client.submit(run_block, cfg_future, key, reals, retries=2, pure=False,
-                            key=f"helisweep-{key[0]}-{key[1]}-{key[2]}-{time.monotonic_ns()}")
-        futures[fut] = (key, reals)
-        ac.add(fut)
-
-    while queue and len(futures) < window:
-        submit_next()
-    failed = 0
-    for fut in ac:
-        key, reals = futures.pop(fut)
-        results = fut.result()
-        _write(store, key, reals, results)
-        failed += sum(len(r.failures) for r in results)
-        bar.update(len(reals) * points)
-        if queue:
-            submit_next()
-    store.finish_session({"tasks": n_tasks, "failed_samples": failed})
-    if progress and failed:
-        print(f"{failed} sample(s) failed; reasons are in the store's 'failures' attribute",
-              file=sys.stderr)
-    return store
+    session = SweepSession(cfg, client, store, n_workers, progress=progress,
+                           max_in_flight=max_in_flight)
+    requested = store.requested()
+    if requested is not None and (requested < cfg.run.realisations).any():
+        # a run without a target on a store of one: every point now requests the realisations
+        requested = np.maximum(requested, cfg.run.realisations)
+        store.write_requested(requested, dict(store.group.attrs.get("precision", {})))
+    session.compute(max_tasks=max_tasks)
+    return session.finish()
 
 
 def _write(store: SampleStore, key, reals, results) -> None:

@@ -8,6 +8,9 @@ Layout (``xarray.open_zarr(path)`` reads it; dims and units in attrs)::
     measurements  (..., measurement)     float64   the requested R (h/e^2) and G (e^2/h)
     status        (realisation, ..., energy) int8  0 missing, 1 done, 2 failed
                                                    (the codes of :class:`SampleStatus`)
+    requested_realisations  (geometry, ..., energy) int64   only in runs with a precision
+                  target (:mod:`pipeline.precision`): realisations requested per point; the
+                  samples at realisation >= the request stay missing and are not work left
     segments/     a sub-group of segment pools for edges beyond direct reach, written only
                   through :class:`SegmentPoolStore` (xarray's reader ignores it)
 
@@ -43,9 +46,13 @@ from pipeline.sweep.config import AXES, SweepConfig, config_hash
 from pipeline.timestamps import file_stamp, utc_now
 from pipeline.transport.landauer import parse_measurement
 
-__all__ = ['SampleStore', 'SWEEP_DIMS', 'block_size', 'SampleStatus', 'RealisationSamples', 'SegmentPoolStore']
+__all__ = ['SampleStore', 'SWEEP_DIMS', 'REQUESTED', 'block_size', 'SampleStatus', 'RealisationSamples',
+           'SegmentPoolStore']
 
 SWEEP_DIMS = ("realisation",) + tuple(AXES)
+
+#: the data variable of the realisations requested per sweep point (runs with a precision target)
+REQUESTED = "requested_realisations"
 
 
 class SampleStatus(IntEnum):
@@ -267,6 +274,11 @@ class SampleStore:
         group = zarr.open_group(str(path), mode="r+")
         return cls(path, group)
 
+    def ensure_realisations(self, realisations: int) -> None:
+        """Grow the realisation axis to at least ``realisations`` (new samples are missing);
+        samples already stored are kept."""
+        self._grow(int(realisations))
+
     def _grow(self, realisations: int) -> None:
         self.__dict__.pop("_arrays", None)
         have = self.group["realisation"].shape[0]
@@ -293,18 +305,74 @@ class SampleStore:
         """Status of every sample (see module docstring), shape of the sweep grid."""
         return self.group["status"][...]
 
+    def requested(self) -> np.ndarray | None:
+        """Realisations requested per sweep point (geometry, disorder_strength, b_perp,
+        gate_voltage, energy), or None when the run has no precision target."""
+        if REQUESTED not in self.group:
+            return None
+        return np.asarray(self.group[REQUESTED][...], dtype=np.int64)
+
+    def requested_mask(self, requested: np.ndarray | None = None) -> np.ndarray | None:
+        """Which samples (realisation, geometry, ..., energy) are requested: realisation index
+        below the point's request; None when nothing limits the request."""
+        requested = self.requested() if requested is None else np.asarray(requested)
+        if requested is None:
+            return None
+        r = np.arange(self.shape[0]).reshape((-1,) + (1,) * requested.ndim)
+        return r < requested[None]
+
+    def write_requested(self, requested: np.ndarray, settings: dict) -> None:
+        """Record the realisations requested per point and the settings that chose them.
+
+        The realisation axis grows to the largest request first. The request is one chunk,
+        written through a temporary file and a rename (Zarr's local store), so a kill leaves
+        the previous decision or the new one. ``settings`` go to the attribute
+        ``precision`` (JSON).
+
+        Parameters
+        ----------
+        requested : numpy.ndarray of int
+            Shape of the sweep grid (geometry, disorder_strength, b_perp, gate_voltage,
+            energy), each value at least 1.
+        settings : dict
+            JSON-safe description of the precision target.
+        """
+        requested = np.asarray(requested, dtype=np.int64)
+        if requested.shape != self.shape[1:] or (requested < 1).any():
+            raise StoreError(f"requested realisations of shape {requested.shape} (smallest "
+                             f"{requested.min() if requested.size else None}) do not fit the sweep "
+                             f"grid {self.shape[1:]} with at least one realisation per point")
+        self._grow(int(requested.max()))
+        if REQUESTED not in self.group:
+            arr = self.group.create_array(
+                REQUESTED, shape=requested.shape, dtype="int64", chunks=requested.shape,
+                fill_value=0, compressors=_codecs(), dimension_names=list(AXES),
+                attributes={"long_name": "realisations requested per sweep point (precision "
+                                         "target); samples at or above it are not part of the run",
+                            "units": "1"})
+        else:
+            arr = self.group[REQUESTED]
+        arr[...] = requested
+        self.group.attrs["precision"] = settings
+
     @property
     def block(self) -> int:
         """Realisations per block, i.e. per chunk and per task (fixed when the store is created)."""
         return int(self.group.attrs.get("realisation_block", 1))
 
-    def pending_blocks(self, realisations: int | None = None) -> list[tuple[tuple[int, int, int], list[int]]]:
+    def pending_blocks(self, realisations: int | None = None, requested: np.ndarray | None = None,
+                       ) -> list[tuple[tuple[int, int, int], list[int]]]:
         """Tasks still to do: ``((first realisation of the block, geometry, strength),
-        [realisations of that block with a sample missing])``."""
+        [realisations of that block with a sample missing])``.
+
+        Only requested samples count: those below ``realisations`` and, in a run with a
+        precision target, below the point's request (``requested``, default the stored one).
+        """
         st = self.status()
+        missing = self._missing_work(st, requested)
         if realisations is not None:
-            st = st[:realisations]
-        missing = (st == SampleStatus.MISSING).reshape(st.shape[:3] + (-1,)).any(axis=-1)
+            missing = missing[:realisations]
+        missing = missing.reshape(missing.shape[:3] + (-1,)).any(axis=-1)
         b = self.block
         out = []
         for r0 in range(0, missing.shape[0], b):
@@ -314,10 +382,23 @@ class SampleStore:
                 out.append(((r0, int(g), int(s_)), reals))
         return out
 
+    def _missing_work(self, st: np.ndarray, requested: np.ndarray | None = None) -> np.ndarray:
+        """Missing samples that are requested (all missing ones without a precision target)."""
+        missing = st == SampleStatus.MISSING
+        mask = self.requested_mask(requested)
+        if mask is not None:
+            missing &= mask[:st.shape[0]]
+        return missing
+
     def counts(self) -> dict[str, int]:
+        """Samples ``done``, ``failed``, ``missing`` (requested but not computed), and
+        ``not_requested`` (missing beyond a point's request, precision runs only) of
+        ``total``."""
         st = self.status()
+        missing = int(self._missing_work(st).sum())
+        unrequested = int((st == SampleStatus.MISSING).sum()) - missing
         return {"done": int((st == SampleStatus.DONE).sum()), "failed": int((st == SampleStatus.FAILED).sum()),
-                "missing": int((st == SampleStatus.MISSING).sum()), "total": int(st.size)}
+                "missing": missing, "total": int(st.size), "not_requested": unrequested}
 
     def verify(self) -> list[tuple[str, tuple[int, int, int], str]]:
         """Read every chunk and return the damaged ones as (array, block key, reason).
@@ -369,6 +450,9 @@ class SampleStore:
         c = self.counts()
         lines = [f"{self.path}: {c['done']} done, {c['failed']} failed, {c['missing']} missing "
                  f"of {c['total']} samples ({len(self.pending_blocks())} blocks left)"]
+        if c["not_requested"]:
+            lines[0] += (f"; {c['not_requested']} beyond the points' requested realisations "
+                         f"(precision target) are not part of the run")
         for axis, name in enumerate(SWEEP_DIMS):
             if st.shape[axis] <= 1:
                 continue

@@ -89,8 +89,21 @@ def _precalculated(cfg: SweepConfig, geometry_index: int, dsys, energy: float, b
 
 
 # --------------------------------------------------------------------------- one realisation
-def solve_realisation(cfg: SweepConfig, key: tuple[int, int, int]) -> RealisationSamples:
-    """Solve one realisation at one geometry and strength for all (field, gate, energy) points."""
+def solve_realisation(cfg: SweepConfig, key: tuple[int, int, int],
+                      points: np.ndarray | None = None) -> RealisationSamples:
+    """Solve one realisation at one geometry and strength for all (field, gate, energy) points.
+
+    Parameters
+    ----------
+    cfg : SweepConfig
+        The run's configuration.
+    key : tuple of int
+        (realisation, geometry index, disorder strength index).
+    points : numpy.ndarray of bool, optional
+        Shape (field, gate, energy): solve only these points (a run with a precision target
+        requests realisations per point); the others stay missing (NaN, status 0). Default:
+        every point. A solved point gets the same numbers either way.
+    """
 
     t0 = time.perf_counter()
     r, g, s = key
@@ -112,8 +125,12 @@ def solve_realisation(cfg: SweepConfig, key: tuple[int, int, int]) -> Realisatio
         strength=axes["disorder_strength"][s], outline=dsys.device.outline,
         contacts=dsys.device.contacts,
     )
+    if points is None:
+        points = np.ones((nb, nv, ne), dtype=bool)
     for ib, b in enumerate(axes["b_perp"]):
         for iv, vg in enumerate(axes["gate_voltage"]):
+            if not points[ib, iv].any():
+                continue
             terms = dict(b_perp=b, potential=potential, onsite_extra=extra,
                          gate_potentials=gate_potentials(cfg, dsys.device, vg))
             if dsys.spin_block:
@@ -121,6 +138,8 @@ def solve_realisation(cfg: SweepConfig, key: tuple[int, int, int]) -> Realisatio
             else:
                 params = dsys.params(**terms)
             for ie, energy in enumerate(axes["energy"]):
+                if not points[ib, iv, ie]:
+                    continue
                 try:
                     if dsys.spin_block:
                         res = block_transmission_matrix(
@@ -146,7 +165,16 @@ def solve_realisation(cfg: SweepConfig, key: tuple[int, int, int]) -> Realisatio
     return out
 
 
-def run_block(cfg: SweepConfig, key: tuple[int, int, int], realisations: list[int]) -> list[RealisationSamples]:
-    """One task: :func:`solve_realisation` for each given realisation of a block."""
+def run_block(cfg: SweepConfig, key: tuple[int, int, int], realisations: list[int],
+              requested: np.ndarray | None = None) -> list[RealisationSamples]:
+    """One task: :func:`solve_realisation` for each given realisation of a block.
+
+    ``requested`` (field, gate, energy), in a run with a precision target: realisations
+    requested per point at this geometry and strength; realisation ``r`` is solved only
+    where ``r < requested``. Default: every point.
+    """
     _, g, s = key
-    return [solve_realisation(cfg, (r, g, s)) for r in realisations]
+    if requested is None:
+        return [solve_realisation(cfg, (r, g, s)) for r in realisations]
+    requested = np.asarray(requested)
+    return [solve_realisation(cfg, (r, g, s), points=r < requested) for r in realisations]
