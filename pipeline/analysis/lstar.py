@@ -21,7 +21,12 @@ certification of a device):
     disorder across lengths, see :mod:`pipeline.physics.disorder`). If the mean never leaves the band
     L* is only bounded below by the longest swept length; if it is already outside at the
     shortest length, L* is bounded above by that length. Both cases are flagged.
-(b) *fits* (``scipy.optimize.curve_fit``, errors from the covariance):
+(b) *fits* of the two forms to the per-realisation values across lengths
+    (:mod:`pipeline.analysis.lstar_fits`): a length sweep solves the same realisation at every
+    length (longer samples extend shorter ones), so the per-length means are correlated;
+    the fits are generalised least squares with the covariance of the means estimated from
+    the realisations (correlations shrunk toward the identity, Schaefer & Strimmer 2005),
+    with intervals from the spread over realisations (Student t, n - 1 dof):
 
     * incoherent backscattering (classical addition of scatterers along the edge):
       ``<t> = 1 / (1 + L / lambda)``, so ``L*_fit = lambda tol / (1 - tol)``;
@@ -29,8 +34,12 @@ certification of a device):
       ``L*_fit = -xi ln(1 - tol)``; the variance of ln t grows as 2 L / xi (log-normal law,
       Beenakker, Rev. Mod. Phys. 69, 731 (1997)).
 
-    The form with the lower reduced chi^2 is reported as preferred ("comparable" when the two
-    are within a factor 1.5).
+    Each form is tested by its generalised chi^2 (Hotelling's T^2 of the residual contrasts,
+    F distribution); ``preferred`` is the form that is acceptable while the other is rejected,
+    ``"indistinguishable"`` when both are acceptable (with an estimate of the realisations or
+    lengths that would tell them apart), ``"neither"`` when both are rejected and
+    ``"undetermined"`` when a form cannot be fitted. The correlation of t between adjacent
+    lengths is reported.
 
 The result types (:class:`LStarResult`, :class:`LStarTable`) and the ``lstar.json`` format
 that stores them live in :mod:`pipeline.analysis.lstar_results` and are re-exported here.
@@ -47,8 +56,15 @@ from pathlib import Path
 
 import numpy as np
 import xarray as xr
-from scipy.optimize import OptimizeWarning, curve_fit
 
+from pipeline.analysis.lstar_fits import (
+    SIGNIFICANCE,
+    TEST_METHOD,
+    adjacent_correlation,
+    distinguishing_effort,
+    gls_fit,
+    model_choice,
+)
 from pipeline.analysis.lstar_results import (
     LENGTH_SWEEP,
     Crossing,
@@ -69,10 +85,6 @@ __all__ = ['LStarError', 'Crossing', 'FitResult', 'LStarResult', 'LStarTable',
            'longest_ballistic_length', 'lstar_results', 'save_lstar', 'load_lstar']
 
 _POINT_DIMS = ("disorder_strength", "b_perp", "gate_voltage", "energy")
-
-#: reduced chi^2 ratio below which the two forms are called comparable (common practice, no source)
-_COMPARABLE = 1.5
-
 
 # --------------------------------------------------------------------------- building blocks
 def normalised_transmission(samples, quantised: float, kind: str) -> np.ndarray:
@@ -182,104 +194,54 @@ def crossing_length(lengths, mean_t, tolerance: float = 0.05) -> Crossing:
     return Crossing(float(out[0]), _KINDS[int(code[0])])
 
 
-def _fit(form: str, model, L, y, sigma, p0: float, to_lstar: float, tol: float) -> FitResult:
-    param = "lambda" if form == "incoherent" else "xi"
-    use = np.isfinite(y) & np.isfinite(sigma) & (sigma > 0) & np.isfinite(L)
-    n = int(use.sum())
+def fit_incoherent(lengths, t, *, tolerance: float = 0.05, confidence: float = 0.95) -> FitResult:
+    """Fit ``<t> = 1 / (1 + L / lambda)`` to the per-realisation t of a length sweep.
 
-    def failed(msg):
-        return FitResult(form, param, math.nan, math.nan, math.nan, max(n - 1, 0), n, math.nan,
-                         math.nan, tol, False, msg)
-
-    if n < 2:
-        return failed(f"{n} usable length(s) (finite mean, positive standard error); need at least 2")
-    try:
-        with warnings.catch_warnings():
-            warnings.simplefilter("error", OptimizeWarning)
-            popt, pcov = curve_fit(model, L[use], y[use], p0=[p0], sigma=sigma[use],
-                                   absolute_sigma=True, maxfev=20000)
-    except (RuntimeError, OptimizeWarning, ValueError) as exc:
-        return failed(f"curve_fit did not converge ({exc})")
-    value = float(popt[0])
-    err = float(np.sqrt(pcov[0, 0])) if np.isfinite(pcov[0, 0]) and pcov[0, 0] >= 0 else math.nan
-    resid = (y[use] - model(L[use], value)) / sigma[use]
-    chi2 = float(np.sum(resid**2) / (n - 1))
-    ok = bool(math.isfinite(value) and value > 0 and math.isfinite(err))
-    msg = "" if ok else f"fitted {param} = {value!r} nm is not a positive length with a finite error"
-    return FitResult(form, param, value, err, chi2, n - 1, n, value * to_lstar, abs(err * to_lstar),
-                     tol, ok, msg)
-
-
-def _incoherent_model(L, lam):
-    return 1.0 / (1.0 + L / lam)
-
-
-def _coherent_model(L, xi):
-    return -L / xi
-
-
-def fit_incoherent(lengths, t_mean, t_sem, *, tolerance: float = 0.05) -> FitResult:
-    """Fit ``<t> = 1 / (1 + L / lambda)`` to the mean normalised transmission.
-
-    Weighted least squares (``curve_fit`` with ``sigma = t_sem``, ``absolute_sigma=True``);
-    lengths with a non-finite mean or a non-positive standard error are left out.
+    Generalised least squares with the (shrunk) covariance of the per-length means; see
+    :func:`pipeline.analysis.lstar_fits.gls_fit`.
 
     Parameters
     ----------
-    lengths, t_mean, t_sem : array_like
-        Lengths (nm), mean t and its standard error per length.
+    lengths : array_like
+        (K,) lengths (nm).
+    t : array_like
+        (n, K) normalised transmission per realisation and length (NaN where unusable); a
+        row is one realisation at every length.
     tolerance : float
         For ``lstar = lambda tol / (1 - tol)``.
+    confidence : float
+        Level of the intervals.
 
     Returns
     -------
     FitResult
     """
     tol = _check_tolerance(tolerance)
-    L, y = _as_curve(lengths, t_mean, "t_mean")
-    _, s = _as_curve(lengths, t_sem, "t_sem")
-    inside = np.isfinite(y) & (y > 0) & (y < 1) & (L > 0)
-    p0 = float(np.median(L[inside] * y[inside] / (1 - y[inside]))) if inside.any() else 100 * L.max()
-    return _fit("incoherent", _incoherent_model, L, y, s, max(p0, 1e-6), tol / (1 - tol), tol)
+    L, y = _as_curve(lengths, t, "t")
+    return gls_fit("incoherent", L, np.atleast_2d(y), tolerance=tol, confidence=confidence)
 
 
-def fit_coherent(lengths, lnt_mean, lnt_sem, *, tolerance: float = 0.05) -> FitResult:
-    """Fit ``<ln t> = -L / xi`` (through the origin) to the mean of ln t.
+def fit_coherent(lengths, lnt, *, tolerance: float = 0.05, confidence: float = 0.95) -> FitResult:
+    """Fit ``<ln t> = -L / xi`` (through the origin) to the per-realisation ln t.
 
     Parameters
     ----------
-    lengths, lnt_mean, lnt_sem : array_like
-        Lengths (nm), mean of ln t and its standard error per length.
+    lengths : array_like
+        (K,) lengths (nm).
+    lnt : array_like
+        (n, K) ln t per realisation and length (NaN where unusable, e.g. t <= 0).
     tolerance : float
         For ``lstar = -xi ln(1 - tol)``.
+    confidence : float
+        Level of the intervals.
 
     Returns
     -------
     FitResult
     """
     tol = _check_tolerance(tolerance)
-    L, y = _as_curve(lengths, lnt_mean, "lnt_mean")
-    _, s = _as_curve(lengths, lnt_sem, "lnt_sem")
-    use = np.isfinite(y) & np.isfinite(s) & (s > 0)
-    w = 1.0 / s[use] ** 2 if use.any() else np.ones(0)
-    slope = -np.sum(w * L[use] * y[use]) / np.sum(w * L[use] ** 2) if use.any() else 0.0
-    p0 = 1.0 / slope if slope > 0 else 100 * L.max()
-    return _fit("coherent", _coherent_model, L, y, s, float(p0), -math.log(1 - tol), tol)
-
-
-def _preferred(a: FitResult, b: FitResult) -> str:
-    ca = a.chi2_reduced if a.ok else math.nan
-    cb = b.chi2_reduced if b.ok else math.nan
-    if not (math.isfinite(ca) or math.isfinite(cb)):
-        return "undetermined"
-    if not math.isfinite(cb):
-        return a.form
-    if not math.isfinite(ca):
-        return b.form
-    lo, hi = min(ca, cb), max(ca, cb)
-    if hi <= _COMPARABLE * lo:
-        return "comparable"
-    return a.form if ca < cb else b.form
+    L, y = _as_curve(lengths, lnt, "lnt")
+    return gls_fit("coherent", L, np.atleast_2d(y), tolerance=tol, confidence=confidence)
 
 
 # --------------------------------------------------------------------------- the analysis
@@ -427,12 +389,33 @@ def _analyse(target: _Target, settings: _Settings, x: np.ndarray, valid: np.ndar
     if censored > 0:
         notes.append(f"{censored:.1%} of the bootstrap resamples give only a bound on L*; the "
                      f"interval is censored at the swept range")
-    inc = fit_incoherent(c.L, c.t_mean, c.t_sem, tolerance=settings.tolerance)
-    coh = fit_coherent(c.L, c.lnt_mean, c.lnt_sem, tolerance=settings.tolerance)
-    for f in (inc, coh):
-        if f.ok and not (c.L[have].min() <= f.lstar <= c.L[have].max()):
-            notes.append(f"{f.form} L*_fit = {f.lstar:.4g} nm lies outside the swept lengths "
-                         f"(extrapolated)")
+    t_samples = np.where(c.ok, c.t, np.nan)
+    pos = c.ok & (c.t > 0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        lnt_samples = np.where(pos, np.log(np.where(pos, c.t, 1.0)), np.nan)
+    inc = gls_fit("incoherent", c.L, t_samples, tolerance=settings.tolerance,
+                  confidence=settings.confidence)
+    coh = gls_fit("coherent", c.L, lnt_samples, tolerance=settings.tolerance,
+                  confidence=settings.confidence)
+    notes += _fit_notes((inc, coh), c, have)
+    verdict, reason = model_choice(inc, coh, SIGNIFICANCE)
+    notes.append(f"model choice: {reason}")
+    need_n = need_L = math.nan
+    if verdict == "indistinguishable":
+        need_n, need_L = distinguishing_effort(c.L, t_samples, lnt_samples, inc.value,
+                                               coh.value, significance=SIGNIFICANCE)
+        if math.isfinite(need_n):
+            longer = (f", or the same lengths scaled up to {need_L:.4g} nm with these "
+                      f"realisations (assuming the covariance grows linearly with L)"
+                      if math.isfinite(need_L) else "")
+            enough = (" (by this estimate the present realisations should already suffice: "
+                      "the data agree with both forms better than the mean-field curves do)"
+                      if need_n <= int(max(inc.realisations, coh.realisations)) else "")
+            notes.append(
+                f"to tell the forms apart (each tested against the other's mean-field curve of "
+                f"the same initial slope, which differ at second order in L; fluctuations "
+                f"neglected, so this is a rough estimate; power 80 %): about {need_n:.0f} "
+                f"realisations at the swept lengths{longer}{enough}")
     return LStarResult(
         measurement=target.label, kind=target.kind, quantised=float(target.quantised),
         tolerance=float(settings.tolerance), point=tuple(point),
@@ -445,8 +428,31 @@ def _analyse(target: _Target, settings: _Settings, x: np.ndarray, valid: np.ndar
         lstar_ci_low=lo, lstar_ci_high=hi, confidence=float(settings.confidence),
         bootstrap_resamples=int(settings.resamples), bootstrap_seed=int(settings.seed),
         bootstrap_censored_fraction=censored, incoherent=inc, coherent=coh,
-        preferred=_preferred(inc, coh), notes=tuple(notes), method=LENGTH_SWEEP,
+        preferred=verdict, notes=tuple(notes), method=LENGTH_SWEEP,
+        adjacent_correlation=adjacent_correlation(t_samples), correlation_observable="t",
+        model_choice=(f"generalised chi^2 test of each form ({TEST_METHOD}) at significance "
+                      f"{SIGNIFICANCE:g}: {reason}"),
+        significance=SIGNIFICANCE, distinguish_realisations=need_n,
+        distinguish_max_length=need_L,
     )
+
+
+def _fit_notes(fits, c: _Curves, have: np.ndarray) -> list[str]:
+    """Extrapolated L*_fit, and lengths or realisations a fit left out."""
+    notes = []
+    n_rows = int(c.ok.any(axis=1).sum())
+    for f in fits:
+        if f.ok and not (c.L[have].min() <= f.lstar <= c.L[have].max()):
+            notes.append(f"{f.form} L*_fit = {f.lstar:.4g} nm lies outside the swept lengths "
+                         f"(extrapolated)")
+        if f.n_points and f.n_points < int(have.sum()):
+            notes.append(f"{f.form} fit uses {f.n_points} of {int(have.sum())} lengths (lengths "
+                         f"with fewer than 2 usable values or no spread, or too few complete "
+                         f"realisations, are left out)")
+        if 0 < f.realisations < n_rows:
+            notes.append(f"{f.form} fit uses the {f.realisations} of {n_rows} realisations "
+                         f"usable at every length it fits")
+    return notes
 
 
 def _resolve_point(da: xr.DataArray, dims, point, point_index) -> dict[str, int]:

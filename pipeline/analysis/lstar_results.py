@@ -9,13 +9,16 @@ results of all points. Both convert to plain data and back exactly (``to_dict`` 
 On disk (``lstar.json`` of a length sweep, ``lstar-concatenated.json`` of concatenated
 edges) the results are one JSON document::
 
-    {"schema": "helisweep-lstar/1",
+    {"schema": "helisweep-lstar/2",
      "note": "<model-estimate note>",
      "results": [<LStarResult.to_dict()>, ...],
      "skipped": [{"measurement": ..., "point": {...}, "reason": ...}, ...]}
 
 written by :func:`save_lstar` and read by :func:`load_lstar`. Each result says how it was
-obtained (``method``) and at which sweep point (``point``). This module needs only NumPy,
+obtained (``method``) and at which sweep point (``point``). Schema 2 added the fits'
+intervals, goodness-of-fit tests, the correlation between adjacent lengths and the
+test-based ``preferred`` verdict; documents of schema ``helisweep-lstar/1`` still read (the
+new entries take their defaults: NaN, empty). This module needs only NumPy,
 so figures and packages can read L* results without loading the analysis.
 """
 
@@ -41,7 +44,10 @@ __all__ = ['MODEL_NOTE', 'LSTAR_SCHEMA', 'LENGTH_SWEEP', 'concatenated_method', 
 MODEL_NOTE = "model estimate from a simulated disorder ensemble, not a device certification"
 
 #: ``schema`` entry of every L* JSON document; raise the number when the layout changes
-LSTAR_SCHEMA = "helisweep-lstar/1"
+LSTAR_SCHEMA = "helisweep-lstar/2"
+
+#: earlier schemas that still read (their missing entries take the defaults)
+_READABLE_SCHEMAS = ("helisweep-lstar/1", LSTAR_SCHEMA)
 
 #: ``method`` of an L* from a sweep of directly solved device lengths
 LENGTH_SWEEP = "length sweep"
@@ -117,21 +123,41 @@ class FitResult:
     parameter : str
         ``"lambda"`` or ``"xi"``.
     value, error : float
-        Fitted length and its standard error sqrt(diag(cov)) (nm).
+        Fitted length and its standard error (nm): 1/rate of the GLS rate and the delta-method
+        error se(rate)/rate^2 (see :mod:`pipeline.analysis.lstar_fits`). Documents of schema
+        ``helisweep-lstar/1`` hold the former independent-lengths fit here.
     chi2_reduced : float
-        Sum of squared normalised residuals divided by ``dof``.
+        ``chi2 / dof``.
     dof : int
-        Points used minus one.
+        Degrees of freedom of the goodness-of-fit test: lengths tested minus one.
     n_points : int
-        Lengths used (finite mean, positive finite sem).
+        Lengths used by the fit.
     lstar, lstar_error : float
         Length where the fitted mean reaches 1 - tolerance, and its error (nm).
     tolerance : float
         The tolerance used for ``lstar``.
     ok : bool
-        Whether the fit converged with a finite error.
+        Whether the fit converged to a positive length with a finite error.
     message : str
         Why not, when ``ok`` is false.
+    value_ci_low, value_ci_high : float
+        Interval of the fitted length at level ``confidence`` (``interval_method``); the upper
+        end is inf when the data do not exclude an infinite length (written ``"inf"`` in
+        JSON). NaN when not computed (e.g. documents of schema ``helisweep-lstar/1``).
+    lstar_ci_low, lstar_ci_high : float
+        The same interval for ``lstar``.
+    confidence : float
+        Level of the intervals.
+    interval_method, fit_method, test : str
+        How the interval, the fit and the goodness-of-fit test were done.
+    realisations : int
+        Realisations used (usable at every length used).
+    shrinkage : float
+        Shrinkage intensity of the correlation matrix (0: sample covariance, 1: diagonal).
+    chi2 : float
+        Generalised chi^2 r^T (S/n)^-1 r of the residual contrasts (Hotelling's T^2).
+    p_value : float
+        Its p-value (``test``); a small value rejects the form.
     """
 
     form: str
@@ -146,16 +172,36 @@ class FitResult:
     tolerance: float
     ok: bool
     message: str = ""
+    value_ci_low: float = math.nan
+    value_ci_high: float = math.nan
+    lstar_ci_low: float = math.nan
+    lstar_ci_high: float = math.nan
+    confidence: float = math.nan
+    interval_method: str = ""
+    fit_method: str = ""
+    realisations: int = 0
+    shrinkage: float = math.nan
+    chi2: float = math.nan
+    p_value: float = math.nan
+    test: str = ""
+
+    def __post_init__(self):
+        _canonical_nan(self)
 
     def to_dict(self) -> dict:
-        """This fit as JSON-safe plain data (non-finite numbers become None).
+        """This fit as JSON-safe plain data (NaN becomes None, an unbounded interval end
+        ``"inf"``).
 
         Returns
         -------
         dict
             One key per attribute; :meth:`from_dict` reads it back.
         """
-        return json_safe({f.name: getattr(self, f.name) for f in fields(self)})
+        d = {f.name: getattr(self, f.name) for f in fields(self)}
+        for name in ("value_ci_high", "lstar_ci_high"):
+            if d[name] == math.inf:
+                d[name] = "inf"
+        return json_safe(d)
 
     @classmethod
     def from_dict(cls, data: Mapping) -> FitResult:
@@ -218,13 +264,34 @@ class LStarResult:
     incoherent, coherent : FitResult
         The two fits.
     preferred : str
-        ``"incoherent"``, ``"coherent"``, ``"comparable"`` or ``"undetermined"``.
+        Which form describes the data, from each form's goodness-of-fit test
+        (``model_choice``): ``"incoherent"`` or ``"coherent"`` (that form acceptable, the
+        other rejected), ``"indistinguishable"`` (both acceptable: the data cannot tell them
+        apart), ``"neither"`` (both rejected) or ``"undetermined"`` (a form could not be
+        fitted or tested). Documents of schema ``helisweep-lstar/1`` may hold
+        ``"comparable"`` (the former reduced-chi^2 ratio within 1.5), read as it is.
     notes : tuple of str
-        Caveats (assumptions, extrapolations, excluded samples).
+        Caveats (assumptions, extrapolations, excluded samples, the model-choice reason).
     method : str
         How the L* was obtained: :data:`LENGTH_SWEEP` (directly solved devices of the swept
         lengths) or ``"concatenated, coherent"`` / ``"concatenated, incoherent"`` (edges
         composed from a pool of solved segments, see :func:`concatenated_method`).
+    adjacent_correlation : tuple of float
+        Sample correlation over realisations of ``correlation_observable`` between
+        consecutive swept lengths (one value per adjacent pair; NaN where undefined).
+    correlation_observable : str
+        ``"t"`` (the normalised transmission); empty in ``helisweep-lstar/1`` documents.
+    model_choice : str
+        The criterion behind ``preferred`` and its outcome (p-values).
+    significance : float
+        Level at which a form is rejected.
+    distinguish_realisations : float
+        When ``preferred`` is ``"indistinguishable"``: realisations that would resolve the
+        second-order difference of the two forms at the swept lengths (see
+        :func:`pipeline.analysis.lstar_fits.distinguishing_effort`); NaN otherwise.
+    distinguish_max_length : float
+        The same with the present realisations: the longest length (nm) of the swept
+        lengths scaled by a common factor; NaN otherwise.
     """
 
     measurement: str
@@ -255,6 +322,15 @@ class LStarResult:
     preferred: str
     notes: tuple = field(default=())
     method: str = LENGTH_SWEEP
+    adjacent_correlation: tuple = field(default=())
+    correlation_observable: str = ""
+    model_choice: str = ""
+    significance: float = math.nan
+    distinguish_realisations: float = math.nan
+    distinguish_max_length: float = math.nan
+
+    def __post_init__(self):
+        _canonical_nan(self)
 
     def to_dict(self) -> dict:
         """This result as JSON-safe plain data; :meth:`from_dict` reads it back exactly.
@@ -342,13 +418,29 @@ class LStarResult:
         for f in (self.incoherent, self.coherent):
             sym = "lambda" if f.parameter == "lambda" else "xi"
             if f.ok:
-                lines.append(
-                    f"  {f.form} fit: {sym} = {f.value:.4g} +- {f.error:.2g} nm, reduced chi^2 "
-                    f"{f.chi2_reduced:.3g} (dof {f.dof}), L*_fit = {f.lstar:.4g} +- "
-                    f"{f.lstar_error:.2g} nm")
+                lines.append(f"  {f.form} fit: {sym} = {f.value:.4g} +- {f.error:.2g} nm"
+                             f"{_interval_text(f.value_ci_low, f.value_ci_high, f.confidence)}, "
+                             f"L*_fit = {f.lstar:.4g} nm"
+                             f"{_interval_text(f.lstar_ci_low, f.lstar_ci_high, f.confidence)}")
+                if math.isfinite(f.p_value):
+                    lines.append(f"    generalised chi^2 {f.chi2:.3g} (dof {f.dof}), p = "
+                                 f"{f.p_value:.3g} ({f.test}); {f.realisations} realisations, "
+                                 f"shrinkage {f.shrinkage:.2f}")
+                else:
+                    lines.append(f"    reduced chi^2 {f.chi2_reduced:.3g} (dof {f.dof})")
             else:
                 lines.append(f"  {f.form} fit: not available ({f.message})")
-        lines.append(f"  better description: {self.preferred}")
+        choice = f" ({self.model_choice})" if self.model_choice else ""
+        lines.append(f"  model choice: {self.preferred}{choice}")
+        if math.isfinite(self.distinguish_realisations):
+            lines.append(f"    to tell the forms apart: about {self.distinguish_realisations:.0f} "
+                         f"realisations at these lengths, or lengths up to "
+                         f"{self.distinguish_max_length:.4g} nm with these realisations "
+                         f"(second-order estimate)")
+        if self.adjacent_correlation:
+            cors = ", ".join(f"{c:.2f}" for c in self.adjacent_correlation)
+            lines.append(f"  correlation of {self.correlation_observable} between adjacent "
+                         f"lengths: {cors}")
         lines += [f"  note: {n}" for n in self.notes]
         lines.append(f"  ({MODEL_NOTE})")
         return "\n".join(lines)
@@ -411,14 +503,29 @@ class LStarTable:
             row.update(
                 lstar=r.lstar, lstar_kind=r.lstar_kind, lstar_ci_low=r.lstar_ci_low,
                 lstar_ci_high=r.lstar_ci_high, lambda_nm=r.incoherent.value,
-                lambda_error=r.incoherent.error, lambda_chi2_reduced=r.incoherent.chi2_reduced,
+                lambda_error=r.incoherent.error, lambda_ci_low=r.incoherent.value_ci_low,
+                lambda_ci_high=r.incoherent.value_ci_high,
+                lambda_chi2_reduced=r.incoherent.chi2_reduced,
+                lambda_p_value=r.incoherent.p_value,
                 xi_nm=r.coherent.value, xi_error=r.coherent.error,
-                xi_chi2_reduced=r.coherent.chi2_reduced, preferred=r.preferred,
+                xi_ci_low=r.coherent.value_ci_low, xi_ci_high=r.coherent.value_ci_high,
+                xi_chi2_reduced=r.coherent.chi2_reduced, xi_p_value=r.coherent.p_value,
+                preferred=r.preferred, distinguish_realisations=r.distinguish_realisations,
+                distinguish_max_length=r.distinguish_max_length,
+                min_adjacent_correlation=min(
+                    (c for c in r.adjacent_correlation if math.isfinite(c)), default=math.nan),
             )
             rows.append(row)
         df = pd.DataFrame(rows)
         df.attrs["note"] = MODEL_NOTE
         return df
+
+
+def _interval_text(lo: float, hi: float, level: float) -> str:
+    if not (math.isfinite(lo) and not math.isnan(hi)):
+        return ""
+    top = "inf" if hi == math.inf else f"{hi:.4g}"
+    return f" ({level:.0%} interval [{lo:.4g}, {top}])"
 
 
 # --------------------------------------------------------------------------- plain data
@@ -451,7 +558,20 @@ _TUPLE_TYPES = {
     "lengths": "tuple[float]", "t_mean": "tuple[float]", "t_sem": "tuple[float]",
     "lnt_mean": "tuple[float]", "lnt_sem": "tuple[float]", "value_mean": "tuple[float]",
     "n": "tuple[int]", "lnt_n": "tuple[int]", "notes": "tuple[str]",
+    "adjacent_correlation": "tuple[float]",
 }
+
+
+def _canonical_nan(obj) -> None:
+    """Every NaN of a frozen result (also inside tuples of floats) becomes ``math.nan``, the
+    one object ``from_dict`` reads None as, so results compare equal after a round trip."""
+    for f in fields(obj):
+        v = getattr(obj, f.name)
+        if isinstance(v, float) and math.isnan(v) and v is not math.nan:
+            object.__setattr__(obj, f.name, math.nan)
+        elif isinstance(v, tuple) and any(isinstance(x, float) and math.isnan(x) for x in v):
+            object.__setattr__(obj, f.name, tuple(
+                math.nan if isinstance(x, float) and math.isnan(x) else x for x in v))
 
 
 def _keys(data) -> list:
@@ -521,9 +641,9 @@ def _collect(obj, results: list, skipped: list) -> None:
 
 
 def _collect_document(doc: Mapping, results: list, skipped: list) -> None:
-    if doc.get("schema") != LSTAR_SCHEMA:
-        raise LStarError(f"L* document schema {doc.get('schema')!r} is not {LSTAR_SCHEMA!r}; "
-                         f"rewrite it with this helisweep (helisweep report)")
+    if doc.get("schema") not in _READABLE_SCHEMAS:
+        raise LStarError(f"L* document schema {doc.get('schema')!r} is not one of "
+                         f"{_READABLE_SCHEMAS!r}; rewrite it with this helisweep (helisweep report)")
     results.extend(LStarResult.from_dict(r) for r in doc.get("results", ()))
     for entry in doc.get("skipped", ()):
         point, why = _read_skipped(entry)
