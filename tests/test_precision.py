@@ -3,6 +3,7 @@ narrow enough ([run] target_ci, target_lstar_ci), the same on any number of work
 after an interrupted run is resumed."""
 
 import inspect
+import warnings
 
 import numpy as np
 import pytest
@@ -12,7 +13,7 @@ from pipeline.analysis.lstar import longest_ballistic_length
 from pipeline.analysis.statistics import resample_uniforms, row_statistics
 from pipeline.analysis.summary import summarize
 from pipeline.cli.main import main
-from pipeline.errors import ConfigError
+from pipeline.errors import ConfigError, ConfigWarning
 from pipeline.precision import loop as precision_loop
 from pipeline.precision import plan_precision, run_to_precision
 from pipeline.precision.plan import (
@@ -24,6 +25,9 @@ from pipeline.precision.plan import (
 from pipeline.sweep.config import config_hash, parse_config
 from pipeline.sweep.driver import run_sweep
 from pipeline.sweep.store import REQUESTED, SampleStatus, SampleStore
+
+# the tiny runs use first blocks far below the recommended one (asserted once, below)
+pytestmark = pytest.mark.filterwarnings("ignore:.*is the first block of a precision target")
 
 #: strength 0: every realisation is the same clean device (an interval of zero width);
 #: strength 2: strong disorder, far wider than the target within 12 realisations
@@ -185,6 +189,12 @@ def test_bad_targets_are_refused_before_compute(tmp_path, capsys):
     assert main(["run", str(path), "--quiet"]) == 2
     assert "not supported with an [edges] network run" in capsys.readouterr().err
     assert not d.exists()  # nothing was started or written
+    # a small first block is allowed but warned about; the recommended one is not
+    with pytest.warns(ConfigWarning, match="realisations = 20 is the first block.*>= 50"):
+        parse_config(target_text(d, "target_ci = 0.05", realisations=20))
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        parse_config(target_text(d, "target_ci = 0.05", realisations=50))
     # without a target the keys change nothing: default limit, same store identity
     plain = parse_config(tiny_config(d, 4, **STRENGTHS))
     assert plan_precision(plain) is None and plain.run.realisation_limit == 4

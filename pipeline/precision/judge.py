@@ -22,7 +22,8 @@ from pipeline.precision.plan import PrecisionPlan
 from pipeline.sweep.config import AXES
 from pipeline.sweep.store import SampleStatus, SampleStore
 
-__all__ = ['PointWidths', 'point_half_widths', 'lstar_relative_half_widths']
+__all__ = ['PointWidths', 'RowWidths', 'row_half_widths', 'point_half_widths',
+           'lstar_relative_half_widths']
 
 #: the dimensions of an L* point: every sweep dimension but the length (geometry)
 LSTAR_DIMS = tuple(AXES)[1:]
@@ -40,6 +41,50 @@ class PointWidths:
     worst: np.ndarray
     #: done samples used
     samples: np.ndarray
+    #: realisations the interval asks for when it sees a sparse tail (rare large deviations,
+    #: the summary's ``realisations_needed``), the largest over the measurements; 0 where none
+    needed: np.ndarray
+
+
+@dataclass(frozen=True)
+class RowWidths:
+    """The judged interval of each row of samples (see :func:`row_half_widths`)."""
+
+    #: (ci_high - ci_low) / 2; 0 where every valid sample is equal; NaN without an interval
+    half_width: np.ndarray
+    #: realisations the interval asks for (sparse tail) beyond the row's samples, else 0
+    needed: np.ndarray
+    #: the statistics of :func:`pipeline.analysis.statistics.row_statistics`
+    stats: dict
+
+
+def row_half_widths(x: np.ndarray, valid: np.ndarray, plan: PrecisionPlan) -> RowWidths:
+    """Half-width of the interval of the mean of each row, as the summary computes it.
+
+    Parameters
+    ----------
+    x : numpy.ndarray, shape (rows, samples)
+        Samples in realisation order (column j is realisation j).
+    valid : numpy.ndarray of bool, same shape
+        Which samples count (done and below the point's limit).
+    plan : PrecisionPlan
+        Bootstrap settings.
+
+    Returns
+    -------
+    RowWidths
+    """
+    u = resample_uniforms(plan.bootstrap_resamples, x.shape[1], plan.bootstrap_seed)
+    stats = row_statistics(x, valid, u, plan.confidence)
+    hw = (stats["ci_high"] - stats["ci_low"]) / 2.0
+    # samples all equal (e.g. no disorder): nothing to narrow, whatever the interval method
+    # makes of a zero spread
+    hw = np.where(np.isnan(hw) & (stats["n"] >= 2) & (stats["sem"] == 0), 0.0, hw)
+    needed = np.zeros(hw.shape, dtype=np.int64)
+    if "realisations_needed" in stats:  # the summary's check for rare large deviations
+        needed = np.where(stats["realisations_needed"] > stats["n"],
+                          stats["realisations_needed"], 0).astype(np.int64)
+    return RowWidths(hw, needed, stats)
 
 
 def point_half_widths(store: SampleStore, limits: np.ndarray, plan: PrecisionPlan,
@@ -66,6 +111,7 @@ def point_half_widths(store: SampleStore, limits: np.ndarray, plan: PrecisionPla
     half = np.full(limits.shape, np.nan)
     worst = np.full(limits.shape, -1, dtype=np.int64)
     used = np.zeros(limits.shape, dtype=np.int64)
+    needed = np.zeros(limits.shape, dtype=np.int64)
     meas_arr, status_arr = store.group["measurements"], store.group["status"]
     for g, s in np.ndindex(limits.shape[:2]):
         sel = points[g, s]
@@ -79,13 +125,8 @@ def point_half_widths(store: SampleStore, limits: np.ndarray, plan: PrecisionPla
         n_m = x.shape[-1]
         rows_x = np.moveaxis(x, 0, -1).reshape(-1, n_max)
         rows_ok = np.moveaxis(np.broadcast_to(ok[..., None], x.shape), 0, -1).reshape(-1, n_max)
-        u = resample_uniforms(plan.bootstrap_resamples, n_max, plan.bootstrap_seed)
-        stats = row_statistics(rows_x, rows_ok, u, plan.confidence)
-        hw = (stats["ci_high"] - stats["ci_low"]) / 2.0
-        # samples all equal (e.g. no disorder): nothing to narrow, whatever the interval
-        # method makes of a zero spread
-        hw = np.where(np.isnan(hw) & (stats["n"] >= 2) & (stats["sem"] == 0), 0.0, hw)
-        hw = hw.reshape(ok.shape[1:] + (n_m,))
+        rw = row_half_widths(rows_x, rows_ok, plan)
+        hw = rw.half_width.reshape(ok.shape[1:] + (n_m,))
         finite = np.isfinite(hw).all(axis=-1)
         # the largest over measurements; a measurement without an interval leaves it unknown
         h = np.where(finite, np.nanmax(np.where(np.isfinite(hw), hw, -np.inf), axis=-1), np.nan)
@@ -93,7 +134,9 @@ def point_half_widths(store: SampleStore, limits: np.ndarray, plan: PrecisionPla
         half[g, s] = np.where(sel, h, np.nan)
         worst[g, s] = np.where(sel, w, -1)
         used[g, s] = np.where(sel, ok.sum(axis=0), 0)
-    return PointWidths(half, worst, used)
+        need = rw.needed.reshape(ok.shape[1:] + (n_m,))
+        needed[g, s] = np.where(sel, need.max(axis=-1), 0)
+    return PointWidths(half, worst, used, needed)
 
 
 def lstar_relative_half_widths(store: SampleStore, limits: np.ndarray, plan: PrecisionPlan,

@@ -126,7 +126,9 @@ def decide(store: SampleStore, plan: PrecisionPlan, requested: np.ndarray, bound
     The running points are those whose request is the boundary; a running point continues
     when its half-width is above ``target_ci`` (or unknown: fewer than two valid samples),
     or when the L* of its (strength, field, gate, energy) point is above
-    ``target_lstar_ci`` (or unknown) and has never met it before.
+    ``target_lstar_ci`` (or unknown) and has never met it before. A point whose interval
+    sees a sparse tail (rare large deviations; the summary's ``realisations_needed`` above
+    its samples) is not narrow enough whatever its width.
 
     Parameters
     ----------
@@ -153,7 +155,8 @@ def decide(store: SampleStore, plan: PrecisionPlan, requested: np.ndarray, bound
     more = np.zeros(requested.shape, dtype=bool)
     if plan.target_ci is not None:
         widths = point_half_widths(store, requested, plan, points=running)
-        more |= running & ~(widths.half_width <= plan.target_ci)
+        met = (widths.half_width <= plan.target_ci) & (widths.needed == 0)
+        more |= running & ~met
     if plan.target_lstar_ci is not None:
         units = running.any(axis=0) & ~lstar_met
         rel, _ = lstar_relative_half_widths(store, requested, plan, units=units,

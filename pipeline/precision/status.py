@@ -97,7 +97,8 @@ def precision_status(store: SampleStore, *, config_dir=None, max_points: int = 1
              f"{int(requested.max())} requested)"]
     if plan.target_ci is not None:
         w = point_half_widths(store, requested, plan)
-        states = point_states(w.half_width, plan.target_ci, pending, requested,
+        judged = np.where(w.needed > 0, np.inf, w.half_width)  # a sparse tail is not met
+        states = point_states(judged, plan.target_ci, pending, requested,
                               plan.max_realisations)
         labels = [str(m) for m in np.asarray(store.group["measurement"][...]).tolist()]
         lines.append(f"target_ci = {plan.target_ci:g}: half-width of the {plan.confidence:.0%} "
@@ -107,8 +108,10 @@ def precision_status(store: SampleStore, *, config_dir=None, max_points: int = 1
         def describe(i):
             if not np.isfinite(w.half_width[i]):
                 return f"half-width unknown (fewer than 2 valid samples), {w.samples[i]} samples"
+            tail = (f" (sparse tail: the interval asks for {w.needed[i]} realisations)"
+                    if w.needed[i] else "")
             return (f"half-width {w.half_width[i]:.4g} ({labels[w.worst[i]]}) = "
-                    f"{w.half_width[i] / plan.target_ci:.2f} x target, {w.samples[i]} samples")
+                    f"{w.half_width[i] / plan.target_ci:.2f} x target{tail}, {w.samples[i]} samples")
 
         lines += _table(store, tuple(AXES), states, w.half_width / plan.target_ci, describe,
                         max_points)

@@ -46,6 +46,11 @@ class _Strict(BaseModel):
 
 #: ``[run] max_realisations`` when a precision target is set and it is not given
 DEFAULT_MAX_REALISATIONS = 2000
+#: smallest first block recommended with a precision target: an ensemble of 50 misses a
+#: tail of weight 10 % entirely with probability 0.9^50 = 0.5 %; with 20, 12 % of such
+#: points stopped after the first block and the coverage at the stop fell to 84 %
+#: (benchmarks/precision_coverage.py, docs/precision.md)
+RECOMMENDED_FIRST_BLOCK = 50
 
 
 class RunSection(_Strict):
@@ -86,8 +91,15 @@ class RunSection(_Strict):
             raise ValueError(
                 f"realisations = {self.realisations!r}: with a precision target it is the first "
                 f"block, after which the interval is judged, and an interval needs at least 2 "
-                f"samples; set realisations >= 2 (e.g. 20)"
+                f"samples; set realisations >= 2 (e.g. {RECOMMENDED_FIRST_BLOCK})"
             )
+        if self.has_target and self.realisations < RECOMMENDED_FIRST_BLOCK:
+            warnings.warn(
+                f"[run] realisations = {self.realisations!r} is the first block of a precision "
+                f"target: a point whose first {self.realisations} samples all miss a rare large "
+                f"deviation looks precise and stops, so its interval holds the mean less often "
+                f"than stated (measured in docs/precision.md); set realisations >= "
+                f"{RECOMMENDED_FIRST_BLOCK}", ConfigWarning, stacklevel=2)
         return self
 
     @property
