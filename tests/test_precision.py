@@ -256,3 +256,53 @@ def test_requested_variable_reads_with_xarray(target_run):
     np.testing.assert_array_equal(da.values, store.requested())
     assert ds.attrs["precision"]["target_ci"] == 0.05
     assert ds.attrs["precision"]["max_realisations"] == 12
+
+
+def test_batch_mode_runs_the_stopping_loop(target_run, tmp_path):
+    # scheduler and one worker as the batch script starts them, then the job's driver command
+    import subprocess
+    import sys
+    import time
+
+    cfg, two = target_run
+    config = tmp_path / "target.toml"
+    config.write_text(cfg.source_text)
+    sched = tmp_path / "scheduler.json"
+    procs = [subprocess.Popen([sys.executable, "-m", "dask", "scheduler", "--scheduler-file",
+                               str(sched), "--port", "0", "--dashboard-address", "127.0.0.1:0",
+                               "--interface", "lo"],
+                              stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)]
+    try:
+        deadline = time.monotonic() + 60
+        while not (sched.exists() and sched.stat().st_size) and time.monotonic() < deadline:
+            assert procs[0].poll() is None, "the scheduler exited"
+            time.sleep(0.1)
+        procs.append(subprocess.Popen([sys.executable, "-m", "dask", "worker", "--scheduler-file",
+                                       str(sched), "--nthreads", "1", "--nworkers", "1",
+                                       "--interface", "lo"],
+                                      stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL))
+        path = tmp_path / "batch.zarr"
+        assert main(["run-in-allocation", str(config), "--scheduler-file", str(sched),
+                     "--store", str(path), "--timeout", "60"]) == 0
+    finally:
+        for proc in procs:
+            if proc.poll() is None:
+                proc.kill()
+            proc.wait()
+    store = SampleStore.open(path)
+    np.testing.assert_array_equal(store.requested(), two.requested())
+    assert_same_samples(store_arrays(path), store_arrays(two.path))
+
+
+def test_run_command_runs_the_stopping_loop(target_run, tmp_path, capsys):
+    cfg, two = target_run
+    config = tmp_path / "target.toml"
+    config.write_text(cfg.source_text.replace(str(two.path.parent), str(tmp_path / "cli")))
+    assert main(["run", str(config), "--workers", "1", "--quiet"]) == 0
+    out = capsys.readouterr().out
+    assert "0 missing of 144 (precision target: `helisweep status" in out
+    path = tmp_path / "cli" / "samples.zarr"
+    np.testing.assert_array_equal(SampleStore.open(path).requested(), two.requested())
+    assert_same_samples(store_arrays(path), store_arrays(two.path))
+    assert main(["status", str(config)]) == 0
+    assert "6 met, 6 max reached, 0 running" in capsys.readouterr().out
