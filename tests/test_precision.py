@@ -230,6 +230,10 @@ def test_run_without_target_on_a_target_store_requests_its_realisations(target_r
     assert (req[:, 0] == 8).all() and (req[:, 1] == 12).all()
     assert grown.counts()["missing"] == 0
     assert (grown.status()[:8] == SampleStatus.DONE).all()
+    # the plain driver given a target config says that it does not apply the target
+    with pytest.warns(ConfigWarning, match="does not apply: it computes the first block of 4"):
+        run_sweep(cfg, client=dask_clients[2], store_path=tmp_path / "copy2.zarr",
+                  progress=False, max_tasks=0)
 
 
 def test_store_variable_and_judged_interval_settings():

@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import sys
 import time
+import warnings
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -24,7 +25,7 @@ from typing import Any
 
 import numpy as np
 
-from pipeline.errors import StoreError
+from pipeline.errors import ConfigWarning, StoreError
 from pipeline.sweep.checks import check_resources, validate_run
 from pipeline.sweep.clusters import allocation_client, open_client
 from pipeline.sweep.config import SweepConfig, config_hash, load_config
@@ -86,6 +87,13 @@ def run_sweep(
     (a partial run that a later call resumes).
     """
     path = Path(store_path) if store_path else cfg.run_dir / "samples.zarr"
+    if cfg.run.has_target:
+        warnings.warn(
+            f"run {cfg.run.name!r} sets a precision target ([run] target_ci or target_lstar_ci), "
+            f"which this plain run does not apply: it computes the first block of "
+            f"{cfg.run.realisations} realisations at every point. Use `helisweep run` "
+            f"(pipeline.precision.run_to_precision) for the stopping loop",
+            ConfigWarning, stacklevel=2)
     n_workers, worker_mb = _worker_facts(client)
     names = validate_run(cfg, n_workers, path, worker_mb)
     if client is None:
