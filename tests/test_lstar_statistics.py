@@ -246,3 +246,22 @@ def test_unbounded_interval_round_trips_and_old_documents_read(tmp_path):
     assert res.adjacent_correlation == () and math.isnan(res.incoherent.p_value)
     assert math.isnan(res.incoherent.value_ci_low) and res.incoherent.value == 300.0
     assert "model choice: comparable" in res.text()
+
+
+def test_methods_text_describes_the_fits_of_a_length_sweep(tmp_path):
+    from conftest import TINY_CONFIG
+
+    from pipeline.output import methods
+    from pipeline.sweep.config import parse_config
+
+    cfg = parse_config(TINY_CONFIG.format(realisations=3, directory=str(tmp_path / "run")))
+    (text,) = methods._lstar_sections(cfg)
+    for fragment in ("generalised least squares", "Schaefer and Strimmer", "cross-fitted",
+                     "Johnson's (1978)", "Hotelling's T^2", "p < 0.05", "indistinguishable",
+                     "neither", "adjacent lengths"):
+        assert fragment in text, fragment
+    width = TINY_CONFIG.replace('parameter = "length", values = [60.0, 120.0]',
+                                'parameter = "width", values = [40.0, 60.0]').replace(
+        "parameters = {{ width = 40.0 }}", "parameters = {{ length = 60.0 }}")
+    assert methods._lstar_sections(parse_config(width.format(
+        realisations=3, directory=str(tmp_path / "run")))) == []

@@ -21,7 +21,7 @@ strongly correlated. The fits here use that correlation:
   r's fold, 64 folds), and the rate solves mean_r z_r = rate
   (sample splitting as in Chernozhukov et al., Econom. J. 21, C1 (2018)). With weights from
   the same realisations, GLS is biased when the values are skewed (a realisation with a
-  large excursion also raises the variance it is weighted with): measured 25-36 % too small
+  large excursion also raises the variance it is weighted with): measured 17-36 % too small
   a rate in the gamma model of ``benchmarks/lstar_coverage.py``; cross-fitted, within 4 %.
 * **interval**: the rate is the mean of the influence values z_r; its interval is Johnson's
   skewness-corrected t interval with n - 1 degrees of freedom (n complete realisations;

@@ -752,8 +752,14 @@ def _draw_lstar(ax: Any, lstar: LStarResult) -> dict:
     return {"value_nm": lstar.lstar, "kind": lstar.lstar_kind, "low_nm": lo, "high_nm": hi,
             "flags": list(lstar.flags),
             "lambda_nm": lstar.incoherent.value, "lambda_err_nm": lstar.incoherent.error,
+            "lambda_ci_nm": [lstar.incoherent.value_ci_low, lstar.incoherent.value_ci_high],
+            "lambda_p_value": lstar.incoherent.p_value,
             "xi_nm": lstar.coherent.value, "xi_err_nm": lstar.coherent.error,
-            "preferred": lstar.preferred, "result": lstar.to_dict()}
+            "xi_ci_nm": [lstar.coherent.value_ci_low, lstar.coherent.value_ci_high],
+            "xi_p_value": lstar.coherent.p_value, "fit_interval_method":
+            lstar.coherent.interval_method or lstar.incoherent.interval_method,
+            "preferred": lstar.preferred, "model_choice": lstar.model_choice,
+            "result": lstar.to_dict()}
 
 
 def _finish_length_panel(ax: Any, d: _LengthData, lstar: LStarResult | None) -> None:
@@ -790,18 +796,39 @@ def _draw_fits(axl: Any, L: np.ndarray, lstar: LStarResult | None) -> tuple[np.n
     fit_coh = _coherent(L, xi) if math.isfinite(xi) and xi > 0 else np.full_like(L, np.nan)
     pref = (lstar.preferred or "").lower() if lstar is not None else ""
     if math.isfinite(lam) and lam > 0:
-        err = f" ± {lstar.incoherent.error:.3g}" if math.isfinite(lstar.incoherent.error) else ""
         axl.plot(dense, _incoherent(dense, lam), color=OKABE_ITO[2], ls="-",
                  lw=2.0 if pref == "incoherent" else 1.2,
-                 label=f"incoherent ⟨t⟩ = 1/(1+L/λ), λ = {lam:.3g}{err} nm"
+                 label=f"incoherent ⟨t⟩ = 1/(1+L/λ), λ = {lam:.3g}"
+                 f"{_fit_uncertainty(lstar.incoherent)}"
                  + (" (preferred)" if pref == "incoherent" else ""))
     if math.isfinite(xi) and xi > 0:
-        err = f" ± {lstar.coherent.error:.3g}" if math.isfinite(lstar.coherent.error) else ""
         axl.plot(dense, _coherent(dense, xi), color=OKABE_ITO[5], ls="-.",
                  lw=2.0 if pref == "coherent" else 1.2,
-                 label=f"coherent exp⟨ln t⟩ = exp(−L/ξ), ξ = {xi:.3g}{err} nm"
+                 label=f"coherent exp⟨ln t⟩ = exp(−L/ξ), ξ = {xi:.3g}"
+                 f"{_fit_uncertainty(lstar.coherent)}"
                  + (" (preferred)" if pref == "coherent" else ""))
     return fit_inc, fit_coh
+
+
+def _fit_uncertainty(fit: Any) -> str:
+    """' nm [low, high] (95 %), p = ...' for a fit with an interval and a test (newer L*
+    results), ' ± error nm' otherwise."""
+    lo, hi = fit.value_ci_low, fit.value_ci_high
+    if math.isfinite(lo) and not math.isnan(hi):
+        top = "∞" if hi == math.inf else f"{hi:.3g}"
+        p = f", p = {fit.p_value:.2g}" if math.isfinite(fit.p_value) else ""
+        return f" nm [{lo:.3g}, {top}] ({fit.confidence * 100:g} %){p}"
+    return f" ± {fit.error:.3g} nm" if math.isfinite(fit.error) else " nm"
+
+
+#: the figure title's words for each L* model-choice verdict (``"comparable"``: documents of
+#: schema helisweep-lstar/1, whose reduced-chi^2 criterion ignored the correlation)
+_VERDICT_WORDS = {
+    "incoherent": "preferred form: incoherent", "coherent": "preferred form: coherent",
+    "indistinguishable": "both forms fit (indistinguishable)",
+    "neither": "neither form fits", "undetermined": "model choice undetermined",
+    "comparable": "forms comparable (former criterion)",
+}
 
 
 def _draw_normalised_panel(axl: Any, d: _LengthData, t: _Normalised,
@@ -828,7 +855,8 @@ def _draw_normalised_panel(axl: Any, d: _LengthData, t: _Normalised,
     axl.set_ylabel("normalised transmission t (1)")
     pref = (lstar.preferred or "").lower() if lstar is not None else ""
     axl.set_title("normalised transmission (log-log)"
-                  + (f"; preferred form: {lstar.preferred}" if pref else ""), fontsize=10)
+                  + (f"; {_VERDICT_WORDS.get(pref, f'model choice: {lstar.preferred}')}"
+                     if pref else ""), fontsize=10)
     axl.grid(alpha=0.3, which="both")
     axl.legend(fontsize=7, loc="best")
     return fits
