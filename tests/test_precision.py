@@ -310,3 +310,17 @@ def test_run_command_runs_the_stopping_loop(target_run, tmp_path, capsys):
     assert_same_samples(store_arrays(path), store_arrays(two.path))
     assert main(["status", str(config)]) == 0
     assert "6 met, 6 max reached, 0 running" in capsys.readouterr().out
+
+
+def test_coverage_benchmark_runs(tmp_path):
+    # the script behind the coverage table of docs/precision.md, at toy sizes
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    script = Path(__file__).resolve().parents[1] / "benchmarks" / "precision_coverage.py"
+    out = subprocess.run([sys.executable, str(script), "--smoke"], capture_output=True, text=True,
+                         timeout=300, cwd=tmp_path)
+    assert out.returncode == 0, out.stderr
+    rows = [ln for ln in out.stdout.splitlines() if ln.startswith("| ") and "%" in ln]
+    assert [r.split("|")[1].strip() for r in rows] == ["normal", "one-sided", "log-normal", "rare"]

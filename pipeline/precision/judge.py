@@ -123,19 +123,18 @@ def point_half_widths(store: SampleStore, limits: np.ndarray, plan: PrecisionPla
         r = np.arange(n_max).reshape(-1, 1, 1, 1)
         ok = (st == SampleStatus.DONE) & (r < limits[g, s][None])
         n_m = x.shape[-1]
-        rows_x = np.moveaxis(x, 0, -1).reshape(-1, n_max)
-        rows_ok = np.moveaxis(np.broadcast_to(ok[..., None], x.shape), 0, -1).reshape(-1, n_max)
-        rw = row_half_widths(rows_x, rows_ok, plan)
-        hw = rw.half_width.reshape(ok.shape[1:] + (n_m,))
+        # rows of the judged points only: (point, measurement) x realisation
+        rows_x = np.moveaxis(x, 0, -1)[sel].reshape(-1, n_max)
+        rows_ok = np.moveaxis(np.broadcast_to(ok[..., None], x.shape), 0, -1)[sel]
+        rw = row_half_widths(rows_x, rows_ok.reshape(-1, n_max), plan)
+        hw = rw.half_width.reshape(-1, n_m)
         finite = np.isfinite(hw).all(axis=-1)
         # the largest over measurements; a measurement without an interval leaves it unknown
-        h = np.where(finite, np.nanmax(np.where(np.isfinite(hw), hw, -np.inf), axis=-1), np.nan)
-        w = np.where(finite, np.argmax(np.where(np.isfinite(hw), hw, -np.inf), axis=-1), -1)
-        half[g, s] = np.where(sel, h, np.nan)
-        worst[g, s] = np.where(sel, w, -1)
-        used[g, s] = np.where(sel, ok.sum(axis=0), 0)
-        need = rw.needed.reshape(ok.shape[1:] + (n_m,))
-        needed[g, s] = np.where(sel, need.max(axis=-1), 0)
+        safe = np.where(np.isfinite(hw), hw, -np.inf)
+        half[g, s][sel] = np.where(finite, safe.max(axis=-1), np.nan)
+        worst[g, s][sel] = np.where(finite, safe.argmax(axis=-1), -1)
+        used[g, s][sel] = ok.sum(axis=0)[sel]
+        needed[g, s][sel] = rw.needed.reshape(-1, n_m).max(axis=-1)
     return PointWidths(half, worst, used, needed)
 
 
