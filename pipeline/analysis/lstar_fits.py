@@ -93,10 +93,13 @@ def _shrunk_batch(x: np.ndarray, sd_fallback: np.ndarray | None = None):
                              f"estimating a covariance")
         sd = np.where(flat, np.broadcast_to(sd_fallback, sd.shape), sd)
     z = xc / sd[:, None, :]
-    w = z[:, :, :, None] * z[:, :, None, :]
-    wbar = w.mean(axis=1)
+    # w_kij = z_ki z_kj; sum_k (w_kij - wbar_ij)^2 = sum_k z_ki^2 z_kj^2 - m wbar_ij^2, two
+    # matrix products instead of an (m, K, K) array per slice
+    wbar = np.einsum("bmi,bmj->bij", z, z) / m
+    z2 = z**2
+    spread = np.maximum(np.einsum("bmi,bmj->bij", z2, z2) - m * wbar**2, 0.0)
     r = m / (m - 1) * wbar
-    var_r = m / (m - 1) ** 3 * ((w - wbar[:, None]) ** 2).sum(axis=1)
+    var_r = m / (m - 1) ** 3 * spread
     off = ~np.eye(k, dtype=bool)
     num = np.where(off, var_r, 0.0).sum(axis=(1, 2))
     den = np.where(off, r**2, 0.0).sum(axis=(1, 2))
