@@ -2,8 +2,11 @@
 
 :func:`summarize` reads a sample store (see :mod:`pipeline.sweep.store`) and reduces its
 realisation axis to statistics at every sweep point: mean, standard deviation, standard
-error, median, 16/84 % quantiles, a seeded percentile-bootstrap confidence interval of the
-mean, the log-averaged ("typical") value and, for resistances, the same in ohm. Only
+error, median, 16/84 % quantiles, a seeded studentized-bootstrap confidence interval of the
+mean with a quality flag (degenerate and sparse-tail points are flagged, the latter with the
+realisations they need), the fraction of samples more than ``tail_deviation`` off the ideal
+value with a Wilson interval, the log-averaged ("typical") value and, for resistances, the
+same in ohm. Only
 samples whose status is *done* and whose value is finite enter; ``n_samples`` says how many
 did, so a partly finished run can be summarised and the count shows what it rests on.
 
@@ -20,12 +23,16 @@ Summary layout (``S`` = geometry, disorder_strength, b_perp, gate_voltage, energ
     mean, std, sem, median, q16, q84,
     ci95_low, ci95_high, typical         (S, measurement)    unit of the measurement
     n_samples                            (S, measurement)    int64
+    ci_flag                              (S, measurement)    int8 (CF flag_values/flag_meanings)
+    realisations_needed, tail_count      (S, measurement)    int64
+    tail_fraction, tail_fraction_low,
+    tail_fraction_high                   (S, measurement)    1
     mean_ohm, median_ohm, sem_ohm,
     ci95_low_ohm, ci95_high_ohm          (S, measurement)    ohm (NaN for conductances)
     transmission_mean, transmission_sem  (S, lead_to, lead_from)
     thermal_mean, thermal_sem,
     thermal_ci95_low, thermal_ci95_high  (temperature, S, measurement)   if temperatures given
-    thermal_n_samples                    (temperature, S, measurement)
+    thermal_n_samples, thermal_ci_flag   (temperature, S, measurement)
     thermal_kernel_coverage              (temperature, energy)
 
 Coordinates on ``measurement``: ``unit`` ("h/e^2" or "e^2/h"), ``kind`` ("R"/"G") and
@@ -56,10 +63,13 @@ import xarray as xr
 from pipeline import __version__
 from pipeline.analysis.samples import ideal_values, measurement_labels, open_samples, require_layout
 from pipeline.analysis.statistics import (
+    INTERVAL_METHOD_TEXT,
+    IntervalFlag,
     check_bootstrap_settings,
     resample_uniforms,
     row_statistics,
     thermal_plan,
+    wilson_interval,
 )
 from pipeline.constants import H_OVER_E2_OHM
 from pipeline.errors import AggregateError, SummaryWarning, TransportError
@@ -80,6 +90,8 @@ _NEGLIGIBLE_WEIGHT = 1e-9
 #: statistics kept per measurement, and after thermal smearing (keys of row_statistics)
 _FULL_KEYS = ("mean", "std", "sem", "median", "q16", "q84", "ci_low", "ci_high", "typical")
 _THERMAL_KEYS = ("mean", "sem", "ci_low", "ci_high")
+#: integer statistics (keys of row_statistics), and the tail counts
+_INT_KEYS = ("ci_flag", "realisations_needed", "tail_count")
 
 _NOTE = (
     "Model estimates from simulated disorder ensembles (BHZ tight-binding model, "
@@ -102,6 +114,8 @@ class _Settings:
     seed: int
     confidence: float
     temperatures: tuple[float, ...]
+    #: relative deviation from the ideal value counted by the tail fraction
+    tail_deviation: float
 
 
 @dataclass(frozen=True)
@@ -117,6 +131,8 @@ class _Samples:
     ideal: np.ndarray
     #: sample status, (realisation, *_SWEEP)
     status: np.ndarray
+    #: realisations asked for per point, (*_SWEEP); None: every realisation of the store
+    requested: np.ndarray | None = None
 
 
 @dataclass(frozen=True)
@@ -155,6 +171,7 @@ def summarize(
     confidence: float = 0.95,
     quantised: Mapping[str, float] | None = None,
     config_dir: str | Path | None = None,
+    tail_deviation: float = 0.05,
 ) -> xr.Dataset:
     """Disorder-averaged statistics of every sweep point of a run (model estimates).
 
@@ -164,7 +181,7 @@ def summarize(
         The run's ``samples.zarr`` (or a Dataset with the same layout, e.g. opened already or
         synthetic).
     bootstrap_resamples : int
-        Resamples of the percentile bootstrap of the mean (>= 100, or 0 to skip intervals).
+        Resamples of the studentized bootstrap of the mean (>= 100, or 0 to skip intervals).
     bootstrap_seed : int
         Seed of ``np.random.default_rng`` for the bootstrap; equal seeds, equal intervals.
     temperatures : sequence of float
@@ -180,6 +197,9 @@ def summarize(
     config_dir : str or Path, optional
         Directory of the original config file, needed only when the device is a geometry file
         given by a relative path.
+    tail_deviation : float
+        Relative deviation from the ideal (quantised) value beyond which a sample counts in
+        ``tail_fraction`` (default 0.05: a device off by more than 5 %).
 
     Returns
     -------
@@ -193,7 +213,8 @@ def summarize(
         When samples are missing or failed (the statistics then rest on fewer samples; see
         ``n_samples``), and for thermal smearing that is skipped or truncated at the grid ends.
     """
-    settings = _checked_settings(bootstrap_resamples, bootstrap_seed, temperatures, confidence)
+    settings = _checked_settings(bootstrap_resamples, bootstrap_seed, temperatures, confidence,
+                                 tail_deviation)
     ds, where = open_samples(store_path)
     require_layout(ds, ("measurements", "status", "transmission"),
                    ("realisation",) + SUMMARY_DIMS + ("lead_to", "lead_from"))
@@ -205,8 +226,10 @@ def summarize(
         contacts=tuple(str(c) for c in np.asarray(ds["lead_from"].values).tolist()),
         ideal=ideal_values(ds, labels, quantised, config_dir),
         status=np.asarray(ds["status"].transpose("realisation", *_SWEEP).values),
+        requested=(np.asarray(ds["requested_realisations"].transpose(*_SWEEP).values)
+                   if "requested_realisations" in ds.data_vars else None),
     )
-    counts = _count_samples(samples.status)
+    counts = _count_samples(samples.status, samples.requested)
     if counts.missing or counts.failed:
         _warn_incomplete(where, counts)
     energies = np.asarray(ds["energy"].values, dtype=float)
@@ -216,9 +239,13 @@ def summarize(
 
 
 # --------------------------------------------------------------------------- checks, counts
-def _checked_settings(resamples, seed, temperatures, confidence) -> _Settings:
-    """The bootstrap and thermal settings, refused with the bad value when unusable."""
+def _checked_settings(resamples, seed, temperatures, confidence, tail_deviation) -> _Settings:
+    """The bootstrap, thermal and tail settings, refused with the bad value when unusable."""
     check_bootstrap_settings(resamples, confidence)
+    if not (isinstance(tail_deviation, (int, float)) and not isinstance(tail_deviation, bool)
+            and 0.0 < float(tail_deviation) < 1.0):
+        raise AggregateError(f"tail_deviation = {tail_deviation!r} must be a relative deviation "
+                             f"in (0, 1), e.g. 0.05 (samples more than 5 % off the ideal value)")
     if not (isinstance(seed, (int, np.integer)) and seed >= 0):
         raise AggregateError(f"bootstrap_seed = {seed!r} must be a non-negative integer")
     temps = [float(t) for t in temperatures]
@@ -227,7 +254,7 @@ def _checked_settings(resamples, seed, temperatures, confidence) -> _Settings:
         raise AggregateError(f"temperatures {bad_t!r} are not usable: give finite values >= 0 in K")
     if len(set(temps)) != len(temps):
         raise AggregateError(f"temperatures {temps!r} repeat; give each temperature once")
-    return _Settings(resamples, seed, confidence, tuple(temps))
+    return _Settings(resamples, seed, confidence, tuple(temps), float(tail_deviation))
 
 
 def _parse_labels(labels: Sequence[str]) -> tuple[Measurement, ...]:
@@ -238,10 +265,17 @@ def _parse_labels(labels: Sequence[str]) -> tuple[Measurement, ...]:
                              f"{exc}") from exc
 
 
-def _count_samples(status: np.ndarray) -> _Counts:
-    done = int((status == SampleStatus.DONE).sum())
-    failed = int((status == SampleStatus.FAILED).sum())
-    return _Counts(done, failed, int(status.size - done - failed), int(status.size))
+def _count_samples(status: np.ndarray, requested: np.ndarray | None = None) -> _Counts:
+    """Done, failed and missing samples; with ``requested`` (per point, from a run with a
+    precision target) only realisations below a point's request count as expected."""
+    if requested is None:
+        expected = np.ones(status.shape, dtype=bool)
+    else:
+        expected = np.arange(status.shape[0]).reshape((-1,) + (1,) * requested.ndim) < requested
+    done = int(((status == SampleStatus.DONE) & expected).sum())
+    failed = int(((status == SampleStatus.FAILED) & expected).sum())
+    total = int(expected.sum())
+    return _Counts(done, failed, total - done - failed, total)
 
 
 def _warn_incomplete(where: str, counts: _Counts) -> None:
@@ -280,10 +314,15 @@ def _reduce(samples: _Samples, settings: _Settings, plans: list,
     ds = samples.ds
     shape = tuple(ds.sizes[d] for d in _SWEEP)
     n_m, n_lead = len(samples.labels), ds.sizes["lead_to"]
+    table = _allocate(shape + (n_m,), _FULL_KEYS + ("tail_fraction", "tail_low", "tail_high"))
+    table.update({k: np.zeros(shape + (n_m,), dtype=np.int64) for k in _INT_KEYS})
+    thermal = _allocate((len(settings.temperatures),) + shape + (n_m,), _THERMAL_KEYS)
+    thermal["ci_flag"] = np.full((len(settings.temperatures),) + shape + (n_m,),
+                                 IntervalFlag.TOO_FEW, dtype=np.int64)
     out = _Reduced(
-        stats=_allocate(shape + (n_m,), _FULL_KEYS),
+        stats=table,
         transmission=_allocate(shape + (n_lead, n_lead), ("mean", "sem"), with_counts=False),
-        thermal=_allocate((len(settings.temperatures),) + shape + (n_m,), _THERMAL_KEYS),
+        thermal=thermal,
         plans=plans, coverage=coverage,
     )
     u = resample_uniforms(settings.resamples, ds.sizes["realisation"], settings.seed)
@@ -294,8 +333,9 @@ def _reduce(samples: _Samples, settings: _Settings, plans: list,
         done = samples.status[:, g, s] == SampleStatus.DONE  # (R, B, V, E)
         x = np.asarray(meas[:, g, s].values, dtype=float)  # (R, B, V, E, M)
         ok = np.broadcast_to(done[..., None], x.shape)
-        _put(out.stats, (g, s), row_statistics(_as_rows(x), _as_rows(ok), u, settings.confidence),
-             x.shape[1:])
+        stats = row_statistics(_as_rows(x), _as_rows(ok), u, settings.confidence)
+        stats.update(_tail_counts(x, ok, samples.ideal[g], settings))
+        _put(out.stats, (g, s), stats, x.shape[1:])
         tm = np.asarray(trans[:, g, s].values, dtype=float)  # (R, B, V, E, n, n)
         tok = done[..., None, None] & np.isfinite(tm)
         # transmissions get no bootstrap interval (no uniforms)
@@ -305,6 +345,26 @@ def _reduce(samples: _Samples, settings: _Settings, plans: list,
         if settings.temperatures:
             _reduce_thermal(out, (g, s), tm, done, samples, u, settings.confidence)
     return out
+
+
+def _tail_counts(x: np.ndarray, ok: np.ndarray, ideal: np.ndarray, settings: _Settings) -> dict:
+    """Samples more than ``tail_deviation`` off the ideal value, with a Wilson interval.
+
+    ``x`` and ``ok`` are (R, ..., measurement), ``ideal`` one value per measurement; rows come
+    out as in :func:`_as_rows`. NaN fractions where the ideal value is unknown or zero.
+    """
+    ok = ok & np.isfinite(x)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        off = np.abs(x / ideal - 1.0) > settings.tail_deviation
+    known = np.isfinite(ideal) & (ideal != 0)
+    count = np.where(known, (off & ok).sum(axis=0), 0)
+    n = ok.sum(axis=0)
+    low, high = wilson_interval(count, n, settings.confidence)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        frac = np.where(known & (n > 0), count / n, np.nan)
+    return {"tail_count": count.reshape(-1), "tail_fraction": frac.reshape(-1),
+            "tail_low": np.where(known, low, np.nan).reshape(-1),
+            "tail_high": np.where(known, high, np.nan).reshape(-1)}
 
 
 def _reduce_thermal(out: _Reduced, index: tuple, tm: np.ndarray, done: np.ndarray,
@@ -368,7 +428,7 @@ def _build_dataset(samples: _Samples, settings: _Settings, counts: _Counts,
             np.asarray(settings.temperatures), dims=("temperature",),
             attrs={"units": "K", "long_name": "temperature of the contacts' Fermi functions"})
         variables.update(_thermal_variables(settings, reduced))
-    attrs = _attributes(samples, settings, counts, reduced.plans)
+    attrs = _attributes(samples, settings, counts, reduced.plans, reduced.stats["ci_flag"])
     return xr.Dataset(variables, coords=coords,
                       attrs={k: _netcdf_attr(v) for k, v in attrs.items()})
 
@@ -405,9 +465,22 @@ def _interval_name(settings: _Settings) -> str:
 
 def _bootstrap_attrs(settings: _Settings) -> dict:
     """How the intervals were made, attached to every interval variable."""
-    return {"confidence": float(settings.confidence), "method": "percentile bootstrap of the "
-            "mean over realisations", "resamples": int(settings.resamples),
-            "seed": int(settings.seed)}
+    return {"confidence": float(settings.confidence), "method": INTERVAL_METHOD_TEXT,
+            "resamples": int(settings.resamples), "seed": int(settings.seed),
+            "quality": "see ci_flag"}
+
+
+def _flag_attrs(long_name: str) -> dict:
+    """CF flag attributes of an interval-quality variable (values of IntervalFlag)."""
+    return {"long_name": long_name, "flag_values": np.array([int(f) for f in IntervalFlag],
+                                                             dtype=np.int8),
+            "flag_meanings": " ".join(f.name.lower() for f in IntervalFlag),
+            "comment": "ok: studentized interval; degenerate: every sample equal, zero-width "
+                       "interval; sparse_tail: rare large deviations (a small cluster of samples "
+                       "beyond a gap), the interval cannot hold its level with this many "
+                       "realisations (see realisations_needed); too_few: fewer than 2 samples; "
+                       "not_computed: no bootstrap resamples; percentile_end: an end taken from "
+                       "the percentile bootstrap because too many resamples were tied"}
 
 
 def _statistic_variables(samples: _Samples, settings: _Settings, stats: dict) -> dict:
@@ -432,6 +505,24 @@ def _statistic_variables(samples: _Samples, settings: _Settings, stats: dict) ->
     put("ci95_high", stats["ci_high"], f"upper end of the {ci_name} interval of the mean",
         comment=_PER_UNIT, **boot)
     put("n_samples", stats["n"], "number of samples used (status done, finite value)", units="1")
+    var["ci_flag"] = (SUMMARY_DIMS, stats["ci_flag"].astype(np.int8),
+                      _flag_attrs("quality of the interval of the mean"))
+    put("realisations_needed", stats["realisations_needed"],
+        "realisations a sparse-tail point needs: with that many, an ensemble misses a tail of the "
+        "observed weight k/n with probability below (1 - confidence)/2; 0 where not flagged",
+        units="1")
+    dev = settings.tail_deviation
+    tail = (f"samples deviating from the ideal value by more than {dev:g} (relative): "
+            f"|x / quantised - 1| > {dev:g}")
+    put("tail_count", stats["tail_count"], f"number of {tail}", units="1")
+    put("tail_fraction", stats["tail_fraction"], f"fraction of {tail}; NaN without an ideal value",
+        units="1", tail_deviation=dev)
+    wilson = {"method": "Wilson score interval (Wilson, J. Am. Stat. Assoc. 22, 209 (1927))",
+              "confidence": float(settings.confidence), "units": "1"}
+    put("tail_fraction_low", stats["tail_low"], f"lower end of the {ci_name} interval of the "
+        f"tail fraction", **wilson)
+    put("tail_fraction_high", stats["tail_high"], f"upper end of the {ci_name} interval of the "
+        f"tail fraction", **wilson)
     put("typical", stats["typical"], "typical (log-averaged) value exp(mean(ln x)); NaN unless "
         "every sample is positive", comment=_PER_UNIT)
     is_r = np.array([m.kind == "R" for m in samples.measures])
@@ -477,13 +568,16 @@ def _thermal_variables(settings: _Settings, reduced: _Reduced) -> dict:
             "comment": _PER_UNIT, **boot}),
         "thermal_n_samples": (tdim, th["n"], {
             "long_name": f"number of samples used {thermal}", "units": "1"}),
+        "thermal_ci_flag": (tdim, th["ci_flag"].astype(np.int8),
+                            _flag_attrs(f"quality of the interval of the mean {thermal}")),
         "thermal_kernel_coverage": (("temperature", "energy"), reduced.coverage, {
             "long_name": "fraction of the thermal window -df/dE inside the energy grid "
                          "(NaN: temperature skipped)", "units": "1"}),
     }
 
 
-def _attributes(samples: _Samples, settings: _Settings, counts: _Counts, plans: list) -> dict:
+def _attributes(samples: _Samples, settings: _Settings, counts: _Counts, plans: list,
+                reduced_flags: np.ndarray) -> dict:
     """Global attributes: provenance, counts, bootstrap and thermal settings, unit convention."""
     ds, temps = samples.ds, settings.temperatures
     return {
@@ -511,10 +605,13 @@ def _attributes(samples: _Samples, settings: _Settings, counts: _Counts, plans: 
                             "n_samples_failed)",
         "bootstrap_seed": int(settings.seed),
         "bootstrap_resamples": int(settings.resamples),
-        "bootstrap_method": "percentile interval of the mean; resample b of a point with n valid "
+        "bootstrap_method": INTERVAL_METHOD_TEXT + "; resample b of a point with n valid "
                             "samples takes indices floor(u[b, :n] n) with u from "
-                            "numpy.random.default_rng(bootstrap_seed).random((resamples, "
-                            "n_realisations)), shared by all points",
+                            "numpy.random.default_rng(bootstrap_seed).random((n_realisations, "
+                            "resamples)).T, shared by all points",
+        "interval_flag_counts": {f.name.lower(): int((reduced_flags == f).sum())
+                                 for f in IntervalFlag},
+        "tail_deviation": float(settings.tail_deviation),
         "confidence": float(settings.confidence),
         "temperatures_K": list(temps),
         "temperatures_skipped_K": [t for t, w in zip(temps, plans) if w is None],

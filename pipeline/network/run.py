@@ -411,7 +411,8 @@ def run_network(cfg: SweepConfig, run_dir: str | Path | None = None, *, client=N
         "failures": ([f"{failed} sampled device(s) at some sweep point have a singular "
                       "conductance matrix (a contact cut off by fully reflecting edges)"]
                      if failed else [])})
-    summary = summarize(edge_store.path, config_dir=cfg.base_dir, temperatures=temperatures)
+    summary = summarize(edge_store.path, config_dir=cfg.base_dir, temperatures=temperatures,
+                        tail_deviation=cfg.summary.tail_deviation)
     if cfg.edges.pool_resamples:
         sem = _pool_sem(cfg, plan, pool_sets, cfg.edges.pool_resamples, nodes_at)
         summary["sem_pool"] = sem.transpose(*summary["mean"].dims)

@@ -196,7 +196,8 @@ def _open_summary(summary: Any, store_path: Path, config: SweepConfig) -> Any:
     import xarray as xr  # heavy; only opening a run needs it
 
     if summary is None:
-        return summarize(store_path, config_dir=config.base_dir)
+        return summarize(store_path, config_dir=config.base_dir,
+                         tail_deviation=config.summary.tail_deviation)
     if isinstance(summary, (str, Path)):
         return xr.load_dataset(str(summary))
     return summary
@@ -437,10 +438,17 @@ def _level(ds: Any) -> str:
         return "95 %"
 
 
+def _interval_kind(ds: Any) -> str:
+    """Short name of the interval rule of a summary (older summaries: percentile)."""
+    method = str(ds.attrs.get("bootstrap_method", ""))
+    return "studentized bootstrap" if "studentized" in method else "percentile bootstrap"
+
+
 def _band_handles(ds: Any):
     from matplotlib.patches import Patch  # heavy; only drawing needs it
 
-    return [Patch(facecolor="#777777", alpha=0.35, label=f"{_level(ds)} CI of the mean"),
+    return [Patch(facecolor="#777777", alpha=0.35,
+                  label=f"{_level(ds)} CI of the mean ({_interval_kind(ds)})"),
             Patch(facecolor="#777777", alpha=0.13, label="mean ± 1 std of samples")]
 
 
@@ -473,6 +481,38 @@ def _stats_columns(ds: Any, unit: str) -> list[str]:
     columns = [_col(_dim_name(ds, d), _dim_unit(d)) for d in _table_dims(ds)]
     columns += [_col(s, "1" if s == "n_samples" else unit) for s in _LINE_STATS]
     return columns + [_col("quantised", unit)]
+
+
+#: value of the summary's ci_flag for rare large deviations (pipeline.analysis.statistics)
+_SPARSE_TAIL = 2
+_FLAG_COLOUR = "#c0392b"
+
+
+def _flags(sub: Any) -> tuple[np.ndarray, np.ndarray] | None:
+    """The interval flags and realisations needed of a summary slice (None for summaries
+    written before the flags existed)."""
+    if "ci_flag" not in sub or "realisations_needed" not in sub:
+        return None
+    return (np.asarray(sub["ci_flag"].values).ravel(),
+            np.asarray(sub["realisations_needed"].values).ravel())
+
+
+def _mark_sparse_tails(ax: Any, x: np.ndarray, mean: np.ndarray, flags) -> None:
+    """Ring the points whose samples show rare large deviations (their interval cannot hold
+    its level), labelled once per axes with the most realisations any of them needs."""
+    if flags is None:
+        return
+    hit = flags[0] == _SPARSE_TAIL
+    if not hit.any():
+        return
+    first = not any(getattr(a, "get_gid", lambda: None)() == "sparse-tail"
+                    for a in ax.collections)
+    need = int(np.max(flags[1][hit]))
+    art = ax.scatter(np.asarray(x)[hit], np.asarray(mean)[hit], s=110, facecolors="none",
+                     edgecolors=_FLAG_COLOUR, linewidths=1.6, zorder=5,
+                     label=(f"rare large deviations: interval unreliable, needs ~{need} "
+                            f"realisations" if first else None))
+    art.set_gid("sparse-tail")
 
 
 def _draw_mean_line(ax: Any, x: np.ndarray, v: Mapping[str, np.ndarray], k: int,
@@ -557,6 +597,7 @@ def figure_vs_axis(run: RunData, label: str, x_dim: str, slug: str | None = None
         name = (_value_text(ds, line_dim, float(ds[line_dim].values[li]))
                 if line_dim else "mean over realisations")
         _draw_mean_line(ax, x, v, k, len(lines), name)
+        _mark_sparse_tails(ax, x, v["mean"], _flags(sub))
         for j in range(len(x)):
             point = {d: (j if d == x_dim else sel[d]) for d in _SWEEP_DIMS}
             q = float(q_geo[point["geometry"]])
@@ -659,6 +700,8 @@ class _LengthData:
     idx: dict
     #: the swept parameter's name
     param: str
+    #: interval flags and realisations needed per length (None: summary without flags)
+    flags: tuple | None = None
 
 
 @dataclass(frozen=True)
@@ -686,7 +729,7 @@ def _length_data(run: RunData, label: str, select: Mapping[str, Any] | None,
         ds=ds, label=label, unit=unit, q=q,
         tol=lstar.tolerance if lstar is not None else _DEFAULT_TOLERANCE,
         L=_finite(ds["geometry"].values), v={s: _finite(sub[s].values) for s in _LENGTH_STATS},
-        idx=idx, param=_geometry_parameter(ds) or "length",
+        idx=idx, param=_geometry_parameter(ds) or "length", flags=_flags(sub),
     )
     return data, sub
 
@@ -734,6 +777,7 @@ def _draw_length_panel(ax: Any, d: _LengthData) -> None:
     ax.errorbar(L, v["mean"], yerr=[v["mean"] - v["ci95_low"], v["ci95_high"] - v["mean"]],
                 color=colour, marker="o", ms=4, capsize=3, lw=1.4,
                 label=f"mean ± {_level(d.ds)} CI")
+    _mark_sparse_tails(ax, L, v["mean"], d.flags)
 
 
 def _draw_lstar(ax: Any, lstar: LStarResult) -> dict:

@@ -114,7 +114,8 @@ def build_report(
     if run:
         run_sweep(cfg, client=client, store_path=store_path, progress=progress)
     _say(f"summarising {store_path}", progress)
-    summary = summarize(store_path, temperatures=temperatures, config_dir=cfg.base_dir)
+    summary = summarize(store_path, temperatures=temperatures, config_dir=cfg.base_dir,
+                        tail_deviation=cfg.summary.tail_deviation)
     save_summary(summary, run_dir / "summary.nc")
     lstar = _lstar(cfg, run_dir, store_path, summary, tolerance, progress)
     _say("drawing figures", progress)

@@ -407,6 +407,14 @@ class EdgesSection(_Strict):
     evanescent_tolerance: float = Field(default=1e-6, gt=0, lt=1)
 
 
+class SummarySection(_Strict):
+    """How the realisations are reduced to statistics (does not change any sample)."""
+
+    #: a sample counts in the tail fraction when it is more than this relative deviation off
+    #: the ideal (quantised) value, e.g. 0.05: G < 1.9 e^2/h for an ideal 2 e^2/h
+    tail_deviation: float = Field(default=0.05, gt=0, lt=1)
+
+
 class SweepConfig(_Strict):
     run: RunSection
     device: DeviceSection
@@ -421,6 +429,7 @@ class SweepConfig(_Strict):
     cluster: ClusterSection = ClusterSection()
     concatenation: ConcatenationSection | None = None
     edges: EdgesSection | None = None
+    summary: SummarySection = SummarySection()
     #: directory of the config file (resolves relative geometry paths); not part of the file
     base_dir: str = Field(default=".", exclude=True)
     #: the exact text the config was read from
@@ -668,7 +677,7 @@ def config_hash(cfg: SweepConfig) -> str:
     """
     data = cfg.model_dump(mode="json",
                           exclude={"execution": True, "cluster": True, "concatenation": True,
-                                   "edges": True, "run": {"name", "directory", "realisations", "target_ci",
+                                   "edges": True, "summary": True, "run": {"name", "directory", "realisations", "target_ci",
                                                   "target_lstar_ci", "max_realisations"}})
     # the hash predates the rename of "[measure] report" to "labels"; hashing the old name
     # keeps every existing store resumable
