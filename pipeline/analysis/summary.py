@@ -331,6 +331,8 @@ def _reduce(samples: _Samples, settings: _Settings, plans: list,
     # a slab at a time bounds the memory to one slab's samples
     for g, s in itertools.product(range(shape[0]), range(shape[1])):
         done = samples.status[:, g, s] == SampleStatus.DONE  # (R, B, V, E)
+        if samples.requested is not None:  # a precision run: only the samples it asked for
+            done &= np.arange(done.shape[0])[:, None, None, None] < samples.requested[g, s]
         x = np.asarray(meas[:, g, s].values, dtype=float)  # (R, B, V, E, M)
         ok = np.broadcast_to(done[..., None], x.shape)
         stats = row_statistics(_as_rows(x), _as_rows(ok), u, settings.confidence)

@@ -21,6 +21,7 @@ from pipeline.network.run import SAMPLES_STORE, run_network
 from pipeline.output.figures import load_run, make_figures
 from pipeline.output.longedge_figures import plot_concatenated
 from pipeline.output.package import make_package
+from pipeline.precision import plan_precision, run_to_precision
 from pipeline.sweep.clusters import open_client
 from pipeline.sweep.config import SweepConfig
 from pipeline.sweep.driver import run_sweep
@@ -96,6 +97,7 @@ def build_report(
     """
     run_dir = Path(run_dir) if run_dir is not None else cfg.run_dir
     if run and client is None:
+        plan_precision(cfg)  # a target this run cannot have is refused before a cluster starts
         if cfg.edges is not None:
             plan_network(cfg)  # the guard rails refuse before any cluster starts
         with open_client(cfg, store_path=run_dir / "samples.zarr") as session:
@@ -111,7 +113,9 @@ def build_report(
             "results. Give the direct run its own [run] directory"
         )
     store_path = run_dir / "samples.zarr"
-    if run:
+    if run and plan_precision(cfg) is not None:  # a precision target: the stopping loop
+        run_to_precision(cfg, client=client, store_path=store_path, progress=progress)
+    elif run:
         run_sweep(cfg, client=client, store_path=store_path, progress=progress)
     _say(f"summarising {store_path}", progress)
     summary = summarize(store_path, temperatures=temperatures, config_dir=cfg.base_dir,

@@ -166,7 +166,9 @@ def check_resources(
             f"{per_worker:,.0f} MB {where}. Use fewer workers per node (more memory each), a "
             f"coarser lattice (check `helisweep preflight`), or a smaller device"
         )
-    n_samples = cfg.run.realisations * int(np.prod([len(v) for v in cfg.axes.values()]))
+    # with a precision target the store may grow to the realisation limit at every point
+    n_real = cfg.run.realisation_limit if cfg.run.has_target else cfg.run.realisations
+    n_samples = n_real * int(np.prod([len(v) for v in cfg.axes.values()]))
     per_sample = 8 * n_leads * n_leads + 2 * n_leads + 8 * len(cfg.measure.labels) + 1
     disk_mb = n_samples * per_sample / 1e6 + 1.0  # uncompressed upper bound + metadata
     probe = Path(store_path).resolve()
@@ -177,7 +179,8 @@ def check_resources(
         raise HelisweepError(
             f"the store for {n_samples:,} samples needs up to {disk_mb:,.0f} MB but only "
             f"{free_mb:,.0f} MB are free at {str(probe)!r}. Free space, choose another run "
-            f"directory, or reduce realisations or sweep points"
+            f"directory, or reduce realisations (max_realisations with a precision target) or "
+            f"sweep points"
         )
     return {"memory_per_solve_mb": worst_mb, "memory_per_worker_mb": per_worker,
             "store_mb": disk_mb, "free_disk_mb": free_mb}
