@@ -361,7 +361,10 @@ def test_length_figure_with_a_real_lstar_result(real_run, tmp_path):
     assert set(ls.get_xdata()) == {result.lstar}
     facts = plot.extra["lstar"]
     assert facts["value_nm"] == result.lstar and facts["kind"] == result.lstar_kind
-    assert facts["lambda_nm"] == result.incoherent.value and facts["xi_nm"] == result.coherent.value
+    # 3 realisations are too few for the correlated fits (they need 4): NaN, stated as such
+    for key, fit in (("lambda_nm", result.incoherent), ("xi_nm", result.coherent)):
+        assert facts[key] == fit.value or (math.isnan(facts[key]) and math.isnan(fit.value)
+                                           and not fit.ok)
     k = plot.columns.index("normalised [1]")
     assert [r[k] for r in plot.rows] == pytest.approx(list(result.t_mean))
     k = plot.columns.index("normalised_typical [1]")

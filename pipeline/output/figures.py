@@ -902,7 +902,7 @@ def _draw_normalised_panel(axl: Any, d: _LengthData, t: _Normalised,
                   + (f"; {_VERDICT_WORDS.get(pref, f'model choice: {lstar.preferred}')}"
                      if pref else ""), fontsize=10)
     axl.grid(alpha=0.3, which="both")
-    axl.legend(fontsize=7, loc="best")
+    axl.legend(fontsize=6.5, loc="lower left")  # the fit labels are long: keep them inside
     return fits
 
 
