@@ -82,7 +82,7 @@ def test_changed_config_is_refused_unless_fresh(tmp_path, tiny_config_text, dask
     run_sweep(cfg, client=dask_clients[1], store_path=path, progress=False)
     before = store_arrays(path)
     other = parse_config(tiny_config_text(realisations=1, **{"width = 30.0": "width = 31.0"}))
-    with pytest.raises(StoreError, match="different configuration"):
+    with pytest.raises(StoreError, match="holds samples of a different run: the configuration"):
         run_sweep(other, client=dask_clients[1], store_path=path, progress=False)
     assert_same_samples(store_arrays(path), before)  # untouched
     run_sweep(other, client=dask_clients[1], store_path=path, progress=False, fresh=True)

@@ -139,6 +139,9 @@ def _cmd_run(args) -> int:
     if cfg.edges is not None:
         return _run_network(cfg, args)
     if plan is not None:
+        # a store holding other samples is refused before any cluster starts
+        SampleStore.check_resume(args.store or cfg.run_dir / "samples.zarr", cfg,
+                                 fresh=args.fresh)
         with open_client(cfg, cluster_overrides(args), workers=args.workers,
                          store_path=args.store) as session:
             store = run_to_precision(cfg, client=session.client, store_path=args.store,

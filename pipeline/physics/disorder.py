@@ -47,9 +47,15 @@ from shapely.geometry import LineString, MultiPolygon, Polygon
 from pipeline.errors import ModelError
 from pipeline.physics.bhz import exchange_matrices
 
-__all__ = ['DisorderSample', 'hash_uniform', 'hash_normal', 'Anderson', 'SmoothPotential', 'MagneticExchange', 'EdgeRoughness', 'DisorderTerm', 'DisorderKind', 'DISORDER_KINDS', 'build_term', 'term_to_dict', 'realise', 'conserves_sz', 'describe']
+__all__ = ['RANDOM_SCHEME_VERSION', 'DisorderSample', 'hash_uniform', 'hash_normal', 'Anderson', 'SmoothPotential', 'MagneticExchange', 'EdgeRoughness', 'DisorderTerm', 'DisorderKind', 'DISORDER_KINDS', 'build_term', 'term_to_dict', 'realise', 'conserves_sz', 'describe']
 
 _MASK64 = (1 << 64) - 1
+
+#: version of the random-number scheme (the hash, its key words and sub-streams, how each
+#: disorder kind turns numbers into a sample). Raise it with any change that alters a single
+#: realisation: a store written under another version is then refused on resume instead of
+#: mixing samples of two schemes (pipeline.sweep.identity).
+RANDOM_SCHEME_VERSION = 1
 
 # splitmix64 constants (Steele, Lea, Flood, OOPSLA 2014); the finaliser is a bijection of
 # uint64 with full avalanche, so chaining it over the key words gives independent streams.

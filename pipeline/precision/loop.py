@@ -70,7 +70,7 @@ def run_to_precision(cfg: SweepConfig, *, client=None, store_path: str | Path | 
                           "target_lstar_ci); run it with pipeline.sweep.driver.run_sweep")
     path = Path(store_path) if store_path else cfg.run_dir / "samples.zarr"
     if client is None:
-        validate_run(cfg, None, path, None)  # before any cluster starts
+        validate_run(cfg, None, path, None, fresh=fresh)  # before any cluster starts
         with open_client(cfg, store_path=path) as session:
             return run_to_precision(cfg, client=session.client, store_path=path, fresh=fresh,
                                     progress=progress,

@@ -19,6 +19,7 @@ from pipeline.errors import HelisweepError, ModelError, TransportError
 from pipeline.physics.bhz import continuum_bulk_gap
 from pipeline.sweep.config import SweepConfig
 from pipeline.sweep.runmodel import device_for
+from pipeline.sweep.store import SampleStore
 from pipeline.sweep.tasks import lead_params, system_for
 from pipeline.system.mesh import per_contact, strip_lead
 from pipeline.system.preflight import estimate_memory_mb, lattice_bulk_gap
@@ -34,10 +35,13 @@ def validate_run(
     n_workers: int | None = None,
     store_path: str | Path | None = None,
     worker_memory_mb: float | None = None,
+    *,
+    fresh: bool = False,
 ) -> tuple[str, ...]:
-    """Everything that can be checked before compute: geometry, memory and disk, the
-    discretisation, open lead modes. Cheap checks come first, so a lattice far too fine is
-    refused before anything large is built.
+    """Everything that can be checked before compute: geometry, the identity of an existing
+    store (:meth:`pipeline.sweep.store.SampleStore.check_resume`; skipped with ``fresh``),
+    memory and disk, the discretisation, open lead modes. Cheap checks come first, so a lattice
+    far too fine is refused before anything large is built.
 
     Returns the contact names. Raises a :class:`HelisweepError` subclass with the fix.
     """
@@ -64,6 +68,7 @@ def validate_run(
 
         parse_measurement(label).indices(names)
     path = Path(store_path) if store_path else cfg.run_dir / "samples.zarr"
+    SampleStore.check_resume(path, cfg, fresh=fresh)
     check_resources(cfg, n_workers or cfg.execution.workers or os.cpu_count() or 1, path,
                     worker_memory_mb)
     _check_discretisation(cfg)

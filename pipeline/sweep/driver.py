@@ -95,7 +95,7 @@ def run_sweep(
             f"(pipeline.precision.run_to_precision) for the stopping loop",
             ConfigWarning, stacklevel=2)
     n_workers, worker_mb = _worker_facts(client)
-    names = validate_run(cfg, n_workers, path, worker_mb)
+    names = validate_run(cfg, n_workers, path, worker_mb, fresh=fresh)
     if client is None:
         with open_client(cfg, store_path=path) as session:
             return _drive(cfg, session.client, path, names, fresh=fresh, progress=progress,
@@ -279,7 +279,7 @@ def open_sweep(cfg: SweepConfig, client, store_path: str | Path | None = None, *
     """
     path = Path(store_path) if store_path else cfg.run_dir / "samples.zarr"
     n_workers, worker_mb = _worker_facts(client)
-    names = validate_run(cfg, n_workers, path, worker_mb)
+    names = validate_run(cfg, n_workers, path, worker_mb, fresh=fresh)
     store, n_workers = _open_store(cfg, client, path, names, fresh=fresh, progress=progress)
     return SweepSession(cfg, client, store, n_workers, progress=progress,
                         max_in_flight=max_in_flight)
@@ -317,8 +317,10 @@ def run_on_cluster(cfg: SweepConfig, overrides: Mapping[str, Any] | None = None,
     (the config's ``[cluster]`` resolved with ``overrides``), closing it after.
 
     ``**run_kwargs`` go to :func:`run_sweep` (``store_path``, ``fresh``, ``progress``,
-    ``max_tasks``, ...).
+    ``max_tasks``, ...). A store holding other samples is refused before the cluster starts.
     """
+    path = run_kwargs.get("store_path") or cfg.run_dir / "samples.zarr"
+    SampleStore.check_resume(path, cfg, fresh=bool(run_kwargs.get("fresh", False)))
     with open_client(cfg, overrides, workers=workers,
                      store_path=run_kwargs.get("store_path")) as session:
         if session.max_in_flight is not None:

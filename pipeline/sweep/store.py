@@ -43,6 +43,7 @@ from zarr.codecs import Crc32cCodec, ZstdCodec
 
 from pipeline.errors import StoreError
 from pipeline.sweep.config import AXES, SweepConfig, config_hash
+from pipeline.sweep.identity import STORE_LAYOUT, describe_changes, identity_changes, run_identity
 from pipeline.timestamps import file_stamp, utc_now
 from pipeline.transport.landauer import parse_measurement
 
@@ -63,11 +64,40 @@ class SampleStatus(IntEnum):
     FAILED = 2  #: attempted; the reason is in the store's ``failures`` attribute
 
 
-_FORMAT = "helisweep-samples/1"
+_FORMAT = STORE_LAYOUT
 
 
 def _codecs():
     return [ZstdCodec(level=3), Crc32cCodec()]
+
+
+def _resume_check(path: Path, cfg: SweepConfig, identity: dict) -> tuple[zarr.Group, list]:
+    """Open an existing store and list how its identity differs from ``identity``."""
+    try:
+        group = zarr.open_group(str(path), mode="r+")
+        old = dict(group.attrs)
+    except Exception as exc:  # not a Zarr group at all
+        raise StoreError(
+            f"{str(path)!r} exists but is not a readable sample store ({exc}); move it "
+            f"away or choose another run directory"
+        ) from exc
+    if old.get("format") != _FORMAT:
+        raise StoreError(
+            f"{str(path)!r} is not a helisweep sample store (format {old.get('format')!r}); "
+            f"choose another run directory"
+        )
+    recorded = dict(old.get("identity") or {})
+    # a store from before identities were recorded: its config hash is all there is
+    recorded.setdefault("config", str(old.get("config_hash")))
+    return group, identity_changes(recorded, identity)
+
+
+def _refusal(path: Path, cfg: SweepConfig, changes: list) -> str:
+    return (f"the store {str(path)!r} holds samples of a different run: "
+            f"{describe_changes(changes, cfg)}. Resuming would mix samples of two different "
+            f"devices or models in one store. Restore what changed, choose another run "
+            f"directory, or pass --fresh to move the old store aside (it is never deleted) and "
+            f"start anew")
 
 
 @dataclass
@@ -97,38 +127,49 @@ class SampleStore:
         """
         path = Path(path)
         digest = config_hash(cfg)
+        identity = run_identity(cfg)
         if path.exists():
-            try:
-                group = zarr.open_group(str(path), mode="r+")
-                old = dict(group.attrs)
-            except Exception as exc:  # not a Zarr group at all
-                raise StoreError(
-                    f"{str(path)!r} exists but is not a readable sample store ({exc}); move it "
-                    f"away or choose another run directory"
-                ) from exc
-            if old.get("format") != _FORMAT:
-                raise StoreError(
-                    f"{str(path)!r} is not a helisweep sample store (format {old.get('format')!r}); "
-                    f"choose another run directory"
-                )
-            if old.get("config_hash") != digest:
+            group, changes = _resume_check(path, cfg, identity)
+            if changes:
                 if not fresh:
-                    raise StoreError(
-                        f"the store {str(path)!r} was written by a different configuration "
-                        f"(hash {str(old.get('config_hash'))[:12]} vs {digest[:12]} now). Resuming "
-                        f"would mix incompatible samples. Restore the old config, choose another "
-                        f"run directory, or pass --fresh to move the old store aside and start anew"
-                    )
+                    raise StoreError(_refusal(path, cfg, changes))
                 aside = path.with_name(path.name + ".replaced-" + file_stamp())
                 shutil.move(str(path), str(aside))
             else:
                 store = cls(path, group)
+                if "identity" not in group.attrs:  # written before identities were recorded
+                    group.attrs["identity"] = identity
+                    group.attrs["identity_recorded_late"] = (
+                        "identity first recorded on resume; the geometry file and material "
+                        "numbers of earlier sessions were not checked")
                 store._grow(cfg.run.realisations)
                 store._log_session(provenance)
                 return store
         store = cls._create(path, cfg, contact_names, digest, provenance, n_workers)
+        store.group.attrs["identity"] = identity
         store._log_session(provenance)
         return store
+
+    @staticmethod
+    def check_resume(path: str | Path, cfg: SweepConfig, *, fresh: bool = False) -> None:
+        """Refuse, before any compute, to resume a store that holds other samples.
+
+        Nothing to do when ``path`` does not exist or ``fresh`` is set (the store is then
+        moved aside when the run opens it); otherwise the store must be a sample store whose
+        identity (:mod:`pipeline.sweep.identity`) equals that of ``cfg``.
+
+        Raises
+        ------
+        StoreError
+            Naming what changed (config, geometry file edited, material numbers, random-number
+            scheme, store layout) and the fix.
+        """
+        path = Path(path)
+        if fresh or not path.exists():
+            return
+        _, changes = _resume_check(path, cfg, run_identity(cfg))
+        if changes:
+            raise StoreError(_refusal(path, cfg, changes))
 
     @classmethod
     def write_derived(cls, path: str | Path, ds, *, attrs: dict) -> "SampleStore":
