@@ -134,6 +134,6 @@ def add_run_in_allocation_command(subparsers) -> argparse.ArgumentParser:
     q.add_argument("--expected-workers", dest="expected_workers", type=int, default=1)
     q.add_argument("--timeout", type=float, default=600.0, help="seconds to wait for a worker")
     q.add_argument("--fresh", action="store_true")
-    q.add_argument("--progress", action="store_true", help="progress bar (noisy in job logs)")
+    q.add_argument("--progress", action="store_true", help="progress output (in a job log: a plain line every 5 %% of the work or every minute)")
     q.set_defaults(func=_cmd_run_in_allocation)
     return q

@@ -15,6 +15,7 @@ A run with a precision target (:mod:`pipeline.precision`, above this layer) driv
 
 from __future__ import annotations
 
+import math
 import sys
 import time
 import warnings
@@ -36,30 +37,68 @@ from pipeline.transport.environment import describe
 __all__ = ['run_sweep', 'run_on_cluster', 'run_in_allocation', 'open_sweep', 'SweepSession']
 
 
+#: a non-interactive progress line at least every this many seconds ...
+LOG_INTERVAL_S = 60.0
+#: ... or every this fraction of the work, whichever comes first
+LOG_STEP = 0.05
+
+
 @dataclass
 class _Progress:
+    """Progress of a sweep on standard error: a bar redrawn in place on a terminal, plain
+    lines (done/total, rate, ETA) every 5 % or every minute otherwise (a batch log)."""
+
     total: int
-    stream: object = sys.stderr
+    stream: object = None
     enabled: bool = True
 
     def __post_init__(self):
+        if self.stream is None:
+            self.stream = sys.stderr
         self.done = 0
         self.t0 = time.monotonic()
         self._last = 0.0
+        self._last_fraction = 0.0
+        isatty = getattr(self.stream, "isatty", None)
+        self.interactive = bool(isatty and isatty())
+
+    def _numbers(self, now: float) -> tuple[float, str]:
+        rate = self.done / max(now - self.t0, 1e-9)
+        eta = (self.total - self.done) / rate if rate > 0 else float("inf")
+        return rate, (f"{eta:,.0f} s" if math.isfinite(eta) else "unknown")
 
     def update(self, n: int = 1) -> None:
         self.done += n
+        if not self.enabled:
+            return
         now = time.monotonic()
-        if not self.enabled or (now - self._last < 0.5 and self.done < self.total):
+        if self.interactive:
+            self._bar(now)
+        else:
+            self._line(now)
+
+    def _line(self, now: float) -> None:
+        fraction = self.done / max(self.total, 1)
+        finished = self.done >= self.total
+        if not (finished or fraction - self._last_fraction >= LOG_STEP
+                or now - self._last >= LOG_INTERVAL_S):
+            return
+        self._last, self._last_fraction = now, fraction
+        rate, eta = self._numbers(now)
+        self.stream.write(f"helisweep: progress {self.done}/{self.total} samples "
+                          f"({fraction:.0%}), {rate:.2f} samples/s, ETA {eta}\n")
+        self.stream.flush()
+
+    def _bar(self, now: float) -> None:
+        if now - self._last < 0.5 and self.done < self.total:
             return
         self._last = now
-        rate = self.done / max(now - self.t0, 1e-9)
-        eta = (self.total - self.done) / rate if rate > 0 else float("inf")
+        rate, eta = self._numbers(now)
         width = 30
         fill = int(width * self.done / max(self.total, 1))
         self.stream.write(
             f"\r[{'#' * fill}{'.' * (width - fill)}] {self.done}/{self.total} samples "
-            f"{rate:.2f}/s ETA {eta:,.0f} s "
+            f"{rate:.2f}/s ETA {eta} "
         )
         if self.done >= self.total:
             self.stream.write("\n")
