@@ -138,3 +138,33 @@ def test_identity_components_are_independent_of_extension_keys(tmp_path):
     # the same content under another name: the geometry digest is the same, the config
     # (which names the file) is not
     assert c["geometry"] == a["geometry"] and c["config"] != a["config"]
+
+
+def _open_quietly(path):
+    import warnings
+
+    import xarray as xr
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")  # any warning fails the test
+        return xr.open_zarr(str(path))
+
+
+def test_partial_and_finished_stores_open_in_xarray_without_warnings(tmp_path, dask_clients):
+    from conftest import tiny_config
+
+    from pipeline.sweep.config import parse_config
+
+    cfg = parse_config(tiny_config(tmp_path / "run", 4))
+    path = tmp_path / "run" / "samples.zarr"
+    run_sweep(cfg, client=dask_clients[1], store_path=path, progress=False, max_tasks=1)
+    partial = _open_quietly(path)
+    assert int((partial["status"].values == 1).sum()) > 0
+    assert int((partial["status"].values == 0).sum()) > 0
+    run_sweep(cfg, client=dask_clients[1], store_path=path, progress=False)
+    finished = _open_quietly(path)
+    assert int((finished["status"].values == 1).sum()) == finished["status"].size
+    # a grown store: the consolidated metadata follows the new realisation axis
+    more = parse_config(tiny_config(tmp_path / "run", 6))
+    SampleStore.open_for_run(path, more, ("L", "R"), provenance={})
+    assert _open_quietly(path).sizes["realisation"] == 6

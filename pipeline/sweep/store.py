@@ -33,6 +33,7 @@ Stores never hold executable content: plain numeric and string arrays and JSON a
 from __future__ import annotations
 
 import shutil
+import warnings
 from dataclasses import dataclass
 from enum import IntEnum
 from pathlib import Path
@@ -40,6 +41,7 @@ from pathlib import Path
 import numpy as np
 import zarr
 from zarr.codecs import Crc32cCodec, ZstdCodec
+from zarr.errors import ZarrUserWarning
 
 from pipeline.errors import StoreError
 from pipeline.sweep.config import AXES, SweepConfig, config_hash
@@ -71,10 +73,19 @@ def _codecs():
     return [ZstdCodec(level=3), Crc32cCodec()]
 
 
+def _consolidate(path: Path) -> None:
+    """Consolidated metadata of the store at ``path`` (zarr writes files atomically)."""
+    with warnings.catch_warnings():
+        # consolidated metadata is a zarr-python extension of format 3, which is what
+        # xarray reads first; the warning says so on every write
+        warnings.simplefilter("ignore", ZarrUserWarning)
+        zarr.consolidate_metadata(str(path))
+
+
 def _resume_check(path: Path, cfg: SweepConfig, identity: dict) -> tuple[zarr.Group, list]:
     """Open an existing store and list how its identity differs from ``identity``."""
     try:
-        group = zarr.open_group(str(path), mode="r+")
+        group = zarr.open_group(str(path), mode="r+", use_consolidated=False)
         old = dict(group.attrs)
     except Exception as exc:  # not a Zarr group at all
         raise StoreError(
@@ -144,10 +155,12 @@ class SampleStore:
                         "numbers of earlier sessions were not checked")
                 store._grow(cfg.run.realisations)
                 store._log_session(provenance)
+                store.consolidate()
                 return store
         store = cls._create(path, cfg, contact_names, digest, provenance, n_workers)
         store.group.attrs["identity"] = identity
         store._log_session(provenance)
+        store.consolidate()
         return store
 
     @staticmethod
@@ -206,7 +219,7 @@ class SampleStore:
         path = Path(path)
         if path.exists():
             try:
-                old = dict(zarr.open_group(str(path), mode="r").attrs)
+                old = dict(zarr.open_group(str(path), mode="r", use_consolidated=False).attrs)
             except Exception:  # not a Zarr group
                 old = {}
             if old.get("format") != _FORMAT or not old.get("derived"):
@@ -223,6 +236,7 @@ class SampleStore:
         work = path.with_name(f".{path.name}.partial-{file_stamp()}")
         path.parent.mkdir(parents=True, exist_ok=True)
         ds.to_zarr(str(work), mode="w-", encoding=enc, zarr_format=3, consolidated=False)
+        _consolidate(work)
         if path.exists():
             aside = path.with_name(f".{path.name}.old-{file_stamp()}")
             path.rename(aside)
@@ -230,14 +244,14 @@ class SampleStore:
             shutil.rmtree(aside, ignore_errors=True)
         else:
             work.rename(path)
-        return cls(path, zarr.open_group(str(path), mode="r"))
+        return cls(path, zarr.open_group(str(path), mode="r", use_consolidated=False))
 
     @classmethod
     def open(cls, path: str | Path, mode: str = "r") -> "SampleStore":
         path = Path(path)
         if not path.exists():
             raise StoreError(f"no sample store at {str(path)!r}; run the sweep first")
-        group = zarr.open_group(str(path), mode=mode)
+        group = zarr.open_group(str(path), mode=mode, use_consolidated=False)
         if group.attrs.get("format") != _FORMAT:
             raise StoreError(f"{str(path)!r} is not a helisweep sample store")
         return cls(path, group)
@@ -312,7 +326,7 @@ class SampleStore:
         )
         path.parent.mkdir(parents=True, exist_ok=True)
         ds.to_zarr(str(path), mode="w-", compute=False, encoding=enc, zarr_format=3, consolidated=False)
-        group = zarr.open_group(str(path), mode="r+")
+        group = zarr.open_group(str(path), mode="r+", use_consolidated=False)
         return cls(path, group)
 
     def ensure_realisations(self, realisations: int) -> None:
@@ -395,6 +409,7 @@ class SampleStore:
             arr = self.group[REQUESTED]
         arr[...] = requested
         self.group.attrs["precision"] = settings
+        self.consolidate()
 
     @property
     def block(self) -> int:
@@ -557,6 +572,17 @@ class SampleStore:
         if sessions:
             sessions[-1].update({"finished": utc_now(), **summary})
         self.group.attrs["sessions"] = sessions
+        self.consolidate()
+
+    def consolidate(self) -> None:
+        """Rewrite the store's consolidated metadata (the root ``zarr.json``, written through a
+        temporary file and a rename), so that ``xarray.open_zarr`` opens the store, finished or
+        partial, in one read and without warnings. Called when a session opens the store (after
+        any growth), when a precision decision adds or changes a variable and when a session
+        finishes; chunk writes in between change no metadata."""
+        _consolidate(self.path)
+        self.group = zarr.open_group(str(self.path), mode="r+", use_consolidated=False)
+        self.__dict__.pop("_arrays", None)
 
 
 def block_size(cfg: SweepConfig, n_workers: int = 1) -> int:
@@ -641,7 +667,7 @@ class SegmentPoolStore:
         root_path = Path(store_path)
         path = root_path / group
         if path.exists():
-            old = zarr.open_group(str(path), mode="r").attrs.get("segments_hash")
+            old = zarr.open_group(str(path), mode="r", use_consolidated=False).attrs.get("segments_hash")
             if old != digest:
                 if not (fresh and create):
                     raise StoreError(
@@ -656,7 +682,7 @@ class SegmentPoolStore:
                     f"no segment pools at {str(path)!r}; compute them with "
                     f"`helisweep report CONFIG --run` (or `helisweep run CONFIG`)"
                 )
-            return cls(path, zarr.open_group(str(path), mode="r"))
+            return cls(path, zarr.open_group(str(path), mode="r", use_consolidated=False))
         root = zarr.open_group(str(root_path), mode="a")
         node = root.require_group(group)
         node.attrs.update(format=_SEGMENT_POOLS_FORMAT, segments_hash=digest,

@@ -76,6 +76,9 @@ def store_fingerprint(path: Path) -> dict[str, str]:
             attrs = meta.get("attributes", {})
             for key in VOLATILE_STORE_ATTRS:
                 attrs.pop(key, None)
+            # a copy of the arrays' own zarr.json files (each fingerprinted here), kept for
+            # xarray's one-read opening; its presence is tested in tests/test_integrity.py
+            meta.pop("consolidated_metadata", None)
             out[rel] = _digest(json.dumps(meta, sort_keys=True).encode())
         else:
             out[rel] = _digest(f.read_bytes())
