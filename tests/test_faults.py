@@ -52,7 +52,23 @@ def test_failed_solve_is_recorded_and_the_sweep_goes_on(tmp_path, reference, mon
     failures = store.group.attrs["failures"]
     assert len(failures) == st[..., 1].size
     assert all("injected solver failure" in f["reason"] for f in failures)
-    assert "failed samples" in store.report()
+    report = store.report()
+    assert f"failed samples: {len(failures)} in 1 group(s) by reason" in report
+    assert f"{len(failures)} x " in report and "--retry-failed" in report
+    # a plain resume leaves failed samples alone; --retry-failed computes them again
+    monkeypatch.setattr(tasks, "transmission_matrix", original)
+    with Client(processes=False, n_workers=1, threads_per_worker=1, dashboard_address=":0") as client:
+        again = driver.run_sweep(cfg, client=client, store_path=tmp_path / "s.zarr",
+                                 progress=False)
+        assert np.all(again.status()[..., 1] == SampleStatus.FAILED)
+        retried = driver.run_sweep(cfg, client=client, store_path=tmp_path / "s.zarr",
+                                   progress=False, retry_failed=True)
+    assert np.all(retried.status() == SampleStatus.DONE)
+    _, ref = reference
+    assert_same_samples(store_arrays(retried.path), ref)  # the same numbers as a clean run
+    history = retried.group.attrs["failures"]
+    assert len(history) == len(failures) and all("retried" in f for f in history)
+    assert f"{len(failures)} earlier failure(s) were retried" in retried.report()
 
 
 def test_full_disk_stops_cleanly_and_resume_completes(tmp_path, reference, dask_clients, monkeypatch):

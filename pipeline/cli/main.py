@@ -43,6 +43,7 @@ from pipeline.precision import plan_precision, precision_status, run_to_precisio
 from pipeline.sweep.clusters import allocation_client, open_client
 from pipeline.sweep.config import load_config
 from pipeline.sweep.driver import run_on_cluster
+from pipeline.sweep.lock import describe_lock, read_lock
 from pipeline.sweep.runmodel import device_for
 from pipeline.sweep.store import SampleStore
 from pipeline.system.mesh import build_system
@@ -146,10 +147,12 @@ def _cmd_run(args) -> int:
                          store_path=args.store) as session:
             store = run_to_precision(cfg, client=session.client, store_path=args.store,
                                      fresh=args.fresh, progress=not args.quiet,
+                                     retry_failed=args.retry_failed,
                                      max_in_flight=session.max_in_flight)
     else:
         store = run_on_cluster(cfg, cluster_overrides(args), workers=args.workers,
-                               store_path=args.store, fresh=args.fresh, progress=not args.quiet)
+                               store_path=args.store, fresh=args.fresh, progress=not args.quiet,
+                               retry_failed=args.retry_failed)
     c = store.counts()
     print(f"{store.path}: {c['done']} done, {c['failed']} failed, {c['missing']} missing of {c['total']}"
           + (f" (precision target: `helisweep status {args.config}` shows each point)"
@@ -224,6 +227,9 @@ def _cmd_status(args) -> int:
         config_dir = cfg.base_dir
     store = SampleStore.open(target)
     print(store.report(max_failures=args.failures))
+    held = read_lock(target)  # reading never takes or waits for the lock
+    if held is not None:
+        print(f"being computed by {describe_lock(held)}")
     text = precision_status(store, config_dir=config_dir, max_points=args.points)
     if text:
         print(text)
@@ -284,6 +290,8 @@ def build_parser() -> argparse.ArgumentParser:
     q.add_argument("--workers", type=int, help="local worker processes (default: execution.workers or one per core)")
     q.add_argument("--store", help="store path (default: <run directory>/samples.zarr)")
     q.add_argument("--fresh", action="store_true", help="start anew if the store holds another config (the old store is moved aside)")
+    q.add_argument("--retry-failed", action="store_true",
+                   help="compute failed samples again (their failure records stay in the store's history)")
     q.add_argument("--quiet", action="store_true", help="no progress output")
     add_cluster_options(q)
     q.set_defaults(func=_cmd_run)

@@ -33,7 +33,7 @@ __all__ = ['run_to_precision', 'decide']
 
 
 def run_to_precision(cfg: SweepConfig, *, client=None, store_path: str | Path | None = None,
-                     fresh: bool = False, progress: bool = True,
+                     fresh: bool = False, progress: bool = True, retry_failed: bool = False,
                      max_in_flight: int | None = None,
                      max_tasks: int | None = None) -> SampleStore:
     """Run (or resume) a sweep with a precision target and return its store.
@@ -73,14 +73,19 @@ def run_to_precision(cfg: SweepConfig, *, client=None, store_path: str | Path | 
         validate_run(cfg, None, path, None, fresh=fresh)  # before any cluster starts
         with open_client(cfg, store_path=path) as session:
             return run_to_precision(cfg, client=session.client, store_path=path, fresh=fresh,
+                                    retry_failed=retry_failed,
                                     progress=progress,
                                     max_in_flight=max_in_flight or session.max_in_flight,
                                     max_tasks=max_tasks)
     session = open_sweep(cfg, client, path, fresh=fresh, progress=progress,
+                         retry_failed=retry_failed,
                          max_in_flight=max_in_flight)
-    requested, boundary, complete = _rounds(cfg, plan, session, max_tasks)
-    return session.finish(precision={"last_boundary": boundary, "complete": complete,
-                                     "largest_request": int(requested.max())})
+    try:
+        requested, boundary, complete = _rounds(cfg, plan, session, max_tasks)
+        return session.finish(precision={"last_boundary": boundary, "complete": complete,
+                                         "largest_request": int(requested.max())})
+    finally:
+        session.store.release_lock()  # also when a round ends in an error
 
 
 def _rounds(cfg: SweepConfig, plan: PrecisionPlan, session: SweepSession,

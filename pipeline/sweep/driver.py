@@ -114,6 +114,7 @@ def run_sweep(
     progress: bool = True,
     max_in_flight: int | None = None,
     max_tasks: int | None = None,
+    retry_failed: bool = False,
 ) -> SampleStore:
     """Run (or resume) a sweep and return its store.
 
@@ -123,7 +124,9 @@ def run_sweep(
     (:func:`pipeline.sweep.clusters.open_client`). Rerunning the same command computes only
     the samples still missing; a different configuration is refused unless ``fresh`` (the
     old store is then moved aside, not deleted). ``max_tasks`` stops after that many tasks
-    (a partial run that a later call resumes).
+    (a partial run that a later call resumes). ``retry_failed`` computes failed samples again
+    (their failure records stay in the store's history, see
+    :meth:`pipeline.sweep.store.SampleStore.retry_failed`).
     """
     path = Path(store_path) if store_path else cfg.run_dir / "samples.zarr"
     if cfg.run.has_target:
@@ -139,9 +142,9 @@ def run_sweep(
         with open_client(cfg, store_path=path) as session:
             return _drive(cfg, session.client, path, names, fresh=fresh, progress=progress,
                           max_in_flight=max_in_flight or session.max_in_flight,
-                          max_tasks=max_tasks)
+                          max_tasks=max_tasks, retry_failed=retry_failed)
     return _drive(cfg, client, path, names, fresh=fresh, progress=progress,
-                  max_in_flight=max_in_flight, max_tasks=max_tasks)
+                  max_in_flight=max_in_flight, max_tasks=max_tasks, retry_failed=retry_failed)
 
 
 def _worker_facts(client) -> tuple[int | None, float | None]:
@@ -153,7 +156,8 @@ def _worker_facts(client) -> tuple[int | None, float | None]:
     return len(workers) or None, (min(limits) / 1e6 if limits and min(limits) > 0 else None)
 
 
-def _open_store(cfg, client, path, names, *, fresh, progress) -> tuple[SampleStore, int]:
+def _open_store(cfg, client, path, names, *, fresh, progress,
+                retry_failed: bool = False) -> tuple[SampleStore, int]:
     """Check resources on the actual workers, open (or create) the store, repair damage."""
     n_workers = len(client.scheduler_info().get("workers", {})) or 1
     estimates = check_resources(cfg, n_workers, path, _worker_facts(client)[1])
@@ -161,7 +165,15 @@ def _open_store(cfg, client, path, names, *, fresh, progress) -> tuple[SampleSto
         path, cfg, names, fresh=fresh, n_workers=n_workers,
         provenance={"workers": n_workers, "config_hash": config_hash(cfg), **describe()},
     )
-    damaged = store.repair_for_resume()
+    try:
+        damaged = store.repair_for_resume()
+        retried = store.retry_failed() if retry_failed else 0
+    except BaseException:
+        store.release_lock()
+        raise
+    if progress and retry_failed:
+        print(f"{retried} failed sample(s) will be computed again (their failure records stay "
+              f"in the store's history)", file=sys.stderr)
     if progress:
         if damaged:
             print(f"{len(damaged)} damaged chunk(s) found (checksum); their tasks will be "
@@ -281,7 +293,8 @@ class SweepSession:
         return len(queue)
 
     def finish(self, **summary) -> SampleStore:
-        """Record the session's end (tasks, failed samples and ``summary``) in the store."""
+        """Record the session's end (tasks, failed samples and ``summary``) in the store and
+        release its lock."""
         self.store.finish_session({"tasks": self.tasks, "failed_samples": self.failed, **summary})
         if self.progress and self.failed:
             print(f"{self.failed} sample(s) failed; reasons are in the store's 'failures' "
@@ -291,7 +304,7 @@ class SweepSession:
 
 def open_sweep(cfg: SweepConfig, client, store_path: str | Path | None = None, *,
                fresh: bool = False, progress: bool = True,
-               max_in_flight: int | None = None) -> SweepSession:
+               max_in_flight: int | None = None, retry_failed: bool = False) -> SweepSession:
     """Check the run on the client's workers and open (or create) its store.
 
     Bad input is refused before any compute (:func:`pipeline.sweep.checks.validate_run`
@@ -319,23 +332,29 @@ def open_sweep(cfg: SweepConfig, client, store_path: str | Path | None = None, *
     path = Path(store_path) if store_path else cfg.run_dir / "samples.zarr"
     n_workers, worker_mb = _worker_facts(client)
     names = validate_run(cfg, n_workers, path, worker_mb, fresh=fresh)
-    store, n_workers = _open_store(cfg, client, path, names, fresh=fresh, progress=progress)
+    store, n_workers = _open_store(cfg, client, path, names, fresh=fresh, progress=progress,
+                                   retry_failed=retry_failed)
     return SweepSession(cfg, client, store, n_workers, progress=progress,
                         max_in_flight=max_in_flight)
 
 
-def _drive(cfg, client, path, names, *, fresh, progress, max_in_flight, max_tasks) -> SampleStore:
+def _drive(cfg, client, path, names, *, fresh, progress, max_in_flight, max_tasks,
+           retry_failed: bool = False) -> SampleStore:
     """Submit the pending blocks, write each as it finishes, keep a bounded window in flight."""
-    store, n_workers = _open_store(cfg, client, path, names, fresh=fresh, progress=progress)
-    session = SweepSession(cfg, client, store, n_workers, progress=progress,
-                           max_in_flight=max_in_flight)
-    requested = store.requested()
-    if requested is not None and (requested < cfg.run.realisations).any():
-        # a run without a target on a store of one: every point now requests the realisations
-        requested = np.maximum(requested, cfg.run.realisations)
-        store.write_requested(requested, dict(store.group.attrs.get("precision", {})))
-    session.compute(max_tasks=max_tasks)
-    return session.finish()
+    store, n_workers = _open_store(cfg, client, path, names, fresh=fresh, progress=progress,
+                                   retry_failed=retry_failed)
+    try:
+        session = SweepSession(cfg, client, store, n_workers, progress=progress,
+                               max_in_flight=max_in_flight)
+        requested = store.requested()
+        if requested is not None and (requested < cfg.run.realisations).any():
+            # a run without a target on a store of one: every point now requests them
+            requested = np.maximum(requested, cfg.run.realisations)
+            store.write_requested(requested, dict(store.group.attrs.get("precision", {})))
+        session.compute(max_tasks=max_tasks)
+        return session.finish()
+    finally:
+        store.release_lock()  # also when the session ends in an error
 
 
 def _write(store: SampleStore, key, reals, results) -> None:

@@ -46,6 +46,7 @@ from zarr.errors import ZarrUserWarning
 from pipeline.errors import StoreError
 from pipeline.sweep.config import AXES, SweepConfig, config_hash
 from pipeline.sweep.identity import STORE_LAYOUT, describe_changes, identity_changes, run_identity
+from pipeline.sweep.lock import StoreLock, check_unlocked
 from pipeline.timestamps import file_stamp, utc_now
 from pipeline.transport.landauer import parse_measurement
 
@@ -117,6 +118,8 @@ class SampleStore:
 
     path: Path
     group: zarr.Group
+    #: the lock of a writing session (None when only reading)
+    lock: StoreLock | None = None
 
     # ------------------------------------------------------------------ opening
     @classmethod
@@ -135,10 +138,27 @@ class SampleStore:
         A store written by a different configuration is refused unless ``fresh`` is set;
         then the old store is moved aside (``samples.zarr.replaced-<time>``), never deleted.
         Raising the number of realisations grows the store; samples already there are kept.
+        The store's lock (:mod:`pipeline.sweep.lock`) is taken first and held until
+        :meth:`finish_session` (or :meth:`release_lock`): a second driver is refused.
         """
         path = Path(path)
         digest = config_hash(cfg)
         identity = run_identity(cfg)
+        lock = StoreLock.acquire(path)  # one driver per store, from here to finish_session
+        try:
+            store = cls._open_locked(path, cfg, contact_names, digest, identity,
+                                     provenance=provenance, fresh=fresh, n_workers=n_workers)
+        except BaseException:
+            lock.release()
+            raise
+        store.lock = lock
+        return store
+
+    @classmethod
+    def _open_locked(cls, path: Path, cfg: SweepConfig, contact_names, digest: str,
+                     identity: dict, *, provenance: dict, fresh: bool,
+                     n_workers: int) -> "SampleStore":
+        """:meth:`open_for_run` once the lock is held."""
         if path.exists():
             group, changes = _resume_check(path, cfg, identity)
             if changes:
@@ -165,7 +185,8 @@ class SampleStore:
 
     @staticmethod
     def check_resume(path: str | Path, cfg: SweepConfig, *, fresh: bool = False) -> None:
-        """Refuse, before any compute, to resume a store that holds other samples.
+        """Refuse, before any compute, a store another live driver holds or that holds other
+        samples.
 
         Nothing to do when ``path`` does not exist or ``fresh`` is set (the store is then
         moved aside when the run opens it); otherwise the store must be a sample store whose
@@ -178,6 +199,7 @@ class SampleStore:
             scheme, store layout) and the fix.
         """
         path = Path(path)
+        check_unlocked(path)  # another live driver: refused before a cluster starts
         if fresh or not path.exists():
             return
         _, changes = _resume_check(path, cfg, run_identity(cfg))
@@ -523,13 +545,25 @@ class SampleStore:
                 cells = cells[:6] + ["..."] + cells[-5:]
             lines.append(f"  {name}: " + ", ".join(cells))
         failures = list(self.group.attrs.get("failures", []))
-        if failures:
-            lines.append(f"  failed samples ({len(failures)}), index = "
-                         f"({', '.join(SWEEP_DIMS)}):")
-            for f in failures[:max_failures]:
-                lines.append(f"    {tuple(f['index'])}: {f['reason']}")
-            if len(failures) > max_failures:
-                lines.append(f"    ... and {len(failures) - max_failures} more")
+        current = [f for f in failures
+                   if "retried" not in f and st[tuple(f["index"])] == SampleStatus.FAILED]
+        if current:
+            groups: dict[str, list] = {}
+            for f in current:
+                groups.setdefault(f["reason"], []).append(tuple(f["index"]))
+            lines.append(f"  failed samples: {len(current)} in {len(groups)} group(s) by reason, "
+                         f"index = ({', '.join(SWEEP_DIMS)}); `helisweep run --retry-failed` "
+                         f"computes them again:")
+            ordered = sorted(groups.items(), key=lambda kv: -len(kv[1]))
+            for reason, where in ordered[:max_failures]:
+                examples = ", ".join(str(w) for w in where[:3]) + (", ..." if len(where) > 3 else "")
+                lines.append(f"    {len(where)} x {reason}  (e.g. {examples})")
+            if len(ordered) > max_failures:
+                lines.append(f"    ... and {len(ordered) - max_failures} more reason(s)")
+        earlier = sum(1 for f in failures if "retried" in f)
+        if earlier:
+            lines.append(f"  {earlier} earlier failure(s) were retried (kept in the store's "
+                         f"'failures' attribute as history)")
         return "\n".join(lines)
 
     # ------------------------------------------------------------------ writing
@@ -573,6 +607,38 @@ class SampleStore:
             sessions[-1].update({"finished": utc_now(), **summary})
         self.group.attrs["sessions"] = sessions
         self.consolidate()
+        self.release_lock()
+
+    def retry_failed(self) -> int:
+        """Mark every failed sample missing, so that this session computes it again.
+
+        The failure records stay in the ``failures`` attribute, each marked with the session
+        that retried it (``retried``); a sample that fails again gets a new record.
+
+        Returns
+        -------
+        int
+            Samples marked for another try.
+        """
+        st = self.group["status"]
+        status = st[...]
+        failed = status == SampleStatus.FAILED
+        n = int(failed.sum())
+        if n:
+            status[failed] = SampleStatus.MISSING
+            st[...] = status
+            session = len(self.group.attrs.get("sessions", [])) - 1
+            self.group.attrs["failures"] = [
+                f if "retried" in f else {**f, "retried": session}
+                for f in self.group.attrs.get("failures", [])]
+            self.__dict__.pop("_arrays", None)
+        return n
+
+    def release_lock(self) -> None:
+        """End this writing session's hold on the store (nothing when not holding it)."""
+        if self.lock is not None:
+            self.lock.release()
+            self.lock = None
 
     def consolidate(self) -> None:
         """Rewrite the store's consolidated metadata (the root ``zarr.json``, written through a
