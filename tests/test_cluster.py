@@ -11,6 +11,7 @@ import argparse
 import dataclasses
 import os
 import shlex
+import shutil
 import subprocess
 import sys
 import warnings
@@ -316,6 +317,9 @@ class _BoundsLogCluster:
     def adapt(self, *, minimum_jobs, maximum_jobs):
         self.bounds = (minimum_jobs, maximum_jobs)
 
+    def job_script(self):
+        return "#!/bin/bash\n"
+
     def close(self):
         self.closed = True
 
@@ -336,6 +340,7 @@ def _adapt_bounds(settings, n_workers_hint, monkeypatch):
     cluster = _BoundsLogCluster()
     monkeypatch.setattr(cl, "slurm_cluster", lambda settings, job_name: cluster)
     monkeypatch.setattr("dask.distributed.Client", _IdleClient)
+    monkeypatch.setattr(cl, "probe_submission", lambda script, settings, timeout: None)
     _, close = make_client(dataclasses.replace(settings, kind="slurm"),
                            n_workers_hint=n_workers_hint)
     close()
@@ -583,3 +588,45 @@ def test_batch_script_runs_without_slurm_using_a_stand_in_srun(tmp_path, tiny_co
     assert "6 done, 0 failed, 0 missing of 6 samples" in out.stdout + out.stderr
     assert_same_samples(store_arrays(store), tiny_reference)
     assert not stale.exists()  # removed at the end as well
+
+
+def test_a_refused_worker_job_stops_before_any_run_with_sbatchs_message(tmp_path, monkeypatch):
+    settings = resolve_cluster_settings(None, {"kind": "slurm",
+                                               "shared_directory": str(tmp_path / "shared")})
+    _fake_sbatch(tmp_path, monkeypatch,
+                 'echo "sbatch: error: invalid account or account/partition combination" >&2\n'
+                 'exit 1\n')
+    with pytest.raises(ClusterError) as err:
+        cl.probe_submission("#!/bin/bash\n", settings)
+    msg = str(err.value)
+    assert "invalid account or account/partition combination" in msg
+    assert "--cluster local" in msg and "site defaults file" in msg
+    assert not list((tmp_path / "shared").glob("helisweep-probe-*"))  # the script is removed
+
+
+def test_a_hanging_sbatch_is_cut_short_with_what_it_said(tmp_path, monkeypatch):
+    settings = resolve_cluster_settings(None, {"kind": "slurm",
+                                               "shared_directory": str(tmp_path / "shared")})
+    _fake_sbatch(tmp_path, monkeypatch,
+                 'echo "sbatch: error: s_p_parse_file: cannot stat file /x/slurm.conf" >&2\n'
+                 'exec sleep 30\n')
+    with pytest.raises(ClusterError, match="within 1 s .* cannot stat file /x/slurm.conf"):
+        cl.probe_submission("#!/bin/bash\n", settings, timeout=1.0)
+
+
+@pytest.mark.skipif(shutil.which("sbatch") is None, reason="needs Slurm's sbatch (CI installs it)")
+def test_run_on_slurm_without_a_usable_configuration_fails_fast(tmp_path, tiny_config_text,
+                                                                 monkeypatch, capsys):
+    # a configuration file that does not exist: sbatch says so (and would retry for 60 s;
+    # never call Slurm commands without SLURM_CONF set, they then look on the network)
+    monkeypatch.setenv("SLURM_CONF", str(tmp_path / "no-such" / "slurm.conf"))
+    monkeypatch.setattr(cl, "PROBE_TIMEOUT_S", 5.0)
+    cfg_path = _write_config(tmp_path, tiny_config_text(), name="tiny.toml")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", SharedPathWarning)
+        rc = main(["run", str(cfg_path), "--cluster", "slurm", "--interface", "lo",
+                   "--shared-directory", str(tmp_path / "shared"), "--quiet"])
+    err = capsys.readouterr().err
+    assert rc != 0
+    assert "helisweep: error:" in err and "no-such/slurm.conf" in err and "--cluster local" in err
+    assert not (tmp_path / "run" / "samples.zarr").exists()

@@ -623,6 +623,8 @@ def make_client(settings: ClusterSettings, *, n_workers_hint: int = 0,
 
     cluster = slurm_cluster(settings, job_name=job_name)
     try:
+        # fail fast where Slurm is not usable
+        probe_submission(cluster.job_script(), settings, timeout=PROBE_TIMEOUT_S)
         fewest, most = _scale_bounds(settings, n_workers_hint)
         cluster.adapt(minimum_jobs=fewest, maximum_jobs=most)
         client = Client(cluster)
@@ -630,6 +632,68 @@ def make_client(settings: ClusterSettings, *, n_workers_hint: int = 0,
         cluster.close()
         raise
     return client, _closer(client, cluster)
+
+
+#: longest wait for ``sbatch --test-only`` (sbatch itself retries an unreadable configuration
+#: for 60 s before giving up)
+PROBE_TIMEOUT_S = 30.0
+
+
+def probe_submission(job_script: str, settings: ClusterSettings, *,
+                     timeout: float = PROBE_TIMEOUT_S) -> None:
+    """Ask Slurm whether it would accept a worker job (``sbatch --test-only``), before any run.
+
+    dask-jobqueue submits worker jobs in the background and only logs a refused submission,
+    so without this check a run where Slurm is not usable (no configuration, controller down,
+    a partition or account that does not exist) would wait for workers that never come.
+
+    Parameters
+    ----------
+    job_script : str
+        The worker job script (``SLURMCluster.job_script()``).
+    settings : ClusterSettings
+        For the shared directory (the script is written there, owner-only, and removed).
+    timeout : float
+        Seconds to wait for sbatch's answer.
+
+    Raises
+    ------
+    ClusterError
+        With sbatch's own message and the fixes.
+    """
+    directory = Path(settings.shared_directory)
+    directory.mkdir(parents=True, exist_ok=True)
+    fd, name = tempfile.mkstemp(prefix="helisweep-probe-", suffix=".sbatch", dir=directory)
+    fix = ("Run where Slurm works (a login node of the cluster, with its configuration: "
+           "`sinfo` must answer), fix the partition/account in the config or the site defaults "
+           f"file ({site_defaults_path(None)[0]}), or run locally with --cluster local")
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8") as fh:
+            fh.write(job_script)
+        try:
+            out = subprocess.run(["sbatch", "--test-only", name], capture_output=True,
+                                 text=True, timeout=timeout)
+        except FileNotFoundError:
+            raise ClusterError(f"'sbatch' was not found on PATH, so no worker job can be "
+                               f"submitted. {fix}") from None
+        except subprocess.TimeoutExpired as exc:
+            said = _text(exc.stderr) or _text(exc.output)
+            raise ClusterError(
+                f"Slurm did not accept a test submission within {timeout:g} s (sbatch "
+                f"--test-only); sbatch said: {said.strip()[-600:] or '(nothing)'}. {fix}"
+            ) from None
+        if out.returncode != 0:
+            raise ClusterError(
+                f"Slurm refused the worker job (sbatch --test-only, exit {out.returncode}): "
+                f"{(out.stderr or out.stdout).strip()[-600:]}. {fix}")
+    finally:
+        Path(name).unlink(missing_ok=True)
+
+
+def _text(value) -> str:
+    if value is None:
+        return ""
+    return value.decode(errors="replace") if isinstance(value, bytes) else str(value)
 
 
 def _closer(client, cluster) -> Callable[[], None]:
