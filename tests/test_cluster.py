@@ -93,7 +93,12 @@ def _quiet_render(*args, **kwargs):
 
 # =========================================================================== job scripts
 def test_slurmcluster_job_script_has_directives_resources_and_thread_limits(tmp_path):
-    shared = tmp_path / AWKWARD
+    # the TLS credential paths go unquoted on the worker command line (dask-jobqueue), so a
+    # shared directory that a shell would split or expand is refused before anything starts
+    awkward = _slurm(shared_directory=str(tmp_path / AWKWARD), interface="lo")
+    with pytest.raises(ConfigError, match="cannot go unquoted on the workers' command line"):
+        slurm_cluster(awkward, job_name="helisweep-tiny")
+    shared = tmp_path / "shared, plain"[:6]
     s = _slurm(partition="debug", account="proj-7", walltime="02:30:00", memory="8GB", cores=4,
                extra_directives=["--qos=long", "--constraint=avx2"], interface="lo",
                shared_directory=str(shared))
@@ -122,6 +127,14 @@ def test_slurmcluster_job_script_has_directives_resources_and_thread_limits(tmp_
     arg = {k: v for k, v in zip(argv, argv[1:])}
     assert arg["--nthreads"] == "1" and arg["--nworkers"] == "4"
     assert arg["--interface"] == "lo"
+    # TLS: the workers get the run's credentials, owner-only, under the shared directory
+    assert arg["--protocol"] == "tls://"
+    for flag in ("--tls-ca-file", "--tls-cert", "--tls-key"):
+        path = Path(arg[flag])
+        assert path.parent == shared / "credentials"
+    key = Path(arg["--tls-key"])
+    assert oct(key.stat().st_mode & 0o777) == "0o600"
+    assert oct((shared / "credentials").stat().st_mode & 0o777) == "0o700"
     from dask.utils import parse_bytes
 
     assert parse_bytes(arg["--memory-limit"]) == pytest.approx(2e9, rel=0.01)

@@ -202,3 +202,30 @@ def test_cancelled_batch_job_resubmitted_equals_uninterrupted(tmp_path, tiny_con
     assert len(sessions) == 2 and "finished" not in sessions[0] and "finished" in sessions[1]
     # the resubmitted job computed exactly what was missing: no finished task is redone
     assert sessions[1]["tasks"] == len(missing_at_cancel)
+
+
+def test_a_client_without_the_runs_credentials_is_refused(tmp_path):
+    from dask.distributed import Client
+    from distributed.security import Security
+
+    from pipeline.sweep.clusters import make_client, resolve_cluster_settings
+
+    settings = resolve_cluster_settings(None, _overrides(tmp_path, jobs=1))
+    client, close = make_client(settings, n_workers_hint=1)
+    try:
+        address = client.scheduler.address
+        assert address.startswith("tls://127.0.0.1:")
+        # strangers: plain TCP, TLS without a certificate, TLS with credentials of their own
+        for kwargs in ({"address": address.replace("tls://", "tcp://")},
+                       {"address": address},
+                       {"address": address, "security": Security.temporary()}):
+            with pytest.raises(Exception):  # noqa: B017 - refused in whichever way the comm fails
+                stranger = Client(timeout="5s", **kwargs)
+                stranger.close()
+        # the run's own client still gets its work done on a worker job
+        assert client.submit(sum, [1, 2, 3], pure=False).result(timeout=180) == 6
+        info = client.scheduler_info()
+        assert info["workers"] and all(a.startswith("tls://") for a in info["workers"])
+        assert "127.0.0.1" in client.dashboard_link  # the dashboard stays on this node
+    finally:
+        close()

@@ -521,6 +521,7 @@ def slurm_cluster_options(settings: ClusterSettings, *, job_name: str = "heliswe
     """
     from dask.utils import parse_bytes  # heavy: only where a cluster is used
     from dask_jobqueue.slurm import slurm_format_bytes_ceil  # heavy: only on Slurm
+    from distributed.security import Security  # heavy: only where a cluster is used
 
     if not re.fullmatch(r"[A-Za-z0-9_.\-]{1,128}", job_name):
         raise ConfigError(
@@ -537,7 +538,8 @@ def slurm_cluster_options(settings: ClusterSettings, *, job_name: str = "heliswe
     if settings.account:
         directives.append(f"--account={shlex.quote(settings.account)}")
     directives += list(settings.extra_directives)
-    scheduler_options = {"dashboard_address": "127.0.0.1:0" if settings.interface == "lo" else ":0"}
+    # the dashboard stays on this node (reach it with `ssh -L`); it shows task details
+    scheduler_options = {"dashboard_address": "127.0.0.1:0"}
     return dict(
         cores=settings.cores,
         processes=settings.cores,
@@ -555,9 +557,40 @@ def slurm_cluster_options(settings: ClusterSettings, *, job_name: str = "heliswe
         worker_extra_args=_lifetime_args(settings.walltime_seconds),
         death_timeout=60,
         log_directory=None,
-        shared_temp_directory=settings.shared_directory,
+        shared_temp_directory=str(credentials_directory(settings)),
         scheduler_options=scheduler_options,
+        # TLS with credentials made for this run: scheduler, workers and driver prove
+        # themselves to each other, so no other account can connect a client and run code as
+        # the run's owner. dask-jobqueue writes the workers' key and certificate into the
+        # shared directory, owner-only (mode 0600), and removes them with the cluster.
+        security=Security.temporary(),
+        protocol="tls://",
     )
+
+
+#: characters a path may have to go unquoted on a worker's command line (dask-jobqueue writes
+#: the TLS credential paths there as they are)
+_PLAIN_PATH = re.compile(r"[A-Za-z0-9_./@%+=:,-]+")
+
+
+def credentials_directory(settings: ClusterSettings) -> Path:
+    """Where the run's TLS credentials for the workers go: ``<shared_directory>/credentials``.
+
+    Raises
+    ------
+    ConfigError
+        When the path has characters (blanks, quotes, ``$``, ``~`` ...) that dask-jobqueue
+        would put unquoted on the worker command line or expand.
+    """
+    path = Path(settings.shared_directory) / "credentials"
+    if not _PLAIN_PATH.fullmatch(str(path)):
+        raise ConfigError(
+            f"shared_directory = {settings.shared_directory!r} ({settings.source_of('shared_directory')}) "
+            f"has characters that cannot go unquoted on the workers' command line, where the "
+            f"TLS credentials of the run are passed by path; choose a path of letters, digits "
+            f"and _ . / @ % + = : , -"
+        )
+    return path
 
 
 def slurm_cluster(settings: ClusterSettings, *, job_name: str = "helisweep-worker"):
@@ -576,6 +609,9 @@ def slurm_cluster(settings: ClusterSettings, *, job_name: str = "helisweep-worke
 
     options = slurm_cluster_options(settings, job_name=job_name)
     (Path(settings.shared_directory) / "logs").mkdir(parents=True, exist_ok=True)
+    credentials = credentials_directory(settings)
+    credentials.mkdir(parents=True, exist_ok=True)
+    credentials.chmod(0o700)  # owner-only: the workers' private key is written here
     return SLURMCluster(**options)
 
 
