@@ -210,7 +210,7 @@ def test_batch_script_quotes_awkward_paths_and_names(tmp_path, tiny_config_text,
                   if "=" in line and not line.startswith(("#", "INTERFACE_ARGS", "STORE_ARGS")))
     assert assign["CONFIG"] == str(cfg_path) and assign["WORKDIR"] == str(d)
     # the body uses only quoted expansions of the values
-    assert "cd \"$WORKDIR\"" in text and "rm -f \"$SCHEDULER_FILE\"" in text
+    assert "cd \"$WORKDIR\"" in text and "rm -rf \"$SCHEDULER_FILE\" \"$CREDENTIALS\"" in text
 
 
 def test_batch_script_defaults_and_requeue(tmp_path, tiny_config_text, monkeypatch):

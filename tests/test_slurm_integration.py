@@ -162,7 +162,13 @@ def test_batch_script_through_sbatch_equals_local(tmp_path, tiny_config_text, da
     name = subprocess.run(["squeue", "-h", "-j", job_id, "--states=all", "-o", "%j"],
                           capture_output=True, text=True, timeout=30).stdout.strip()
     assert name == "helisweep test batch"  # sbatch read the quoted name whole
-    assert "worker(s) connected; running the sweep" in _log(shared, job_id)
+    log = _log(shared, job_id)
+    assert "worker(s) connected; running the sweep" in log
+    # TLS with the job's own credentials, which are gone with the job; its log is owner-only
+    assert re.search(r"Scheduler at:\s+tls://127\.0\.0\.1:", log), log[-3000:]
+    assert not list(shared.glob("credentials-*")) and not list(shared.glob("scheduler-*"))
+    log_path = shared / "logs" / f"helisweep-batch-{job_id}.out"
+    assert oct(log_path.stat().st_mode & 0o777) == "0o600"
     _assert_same(store, reference)
 
 

@@ -24,6 +24,7 @@ import numpy as np
 from pipeline.cli.demo import run_demo
 from pipeline.cli.slurm import (
     add_cluster_options,
+    add_credentials_command,
     add_run_in_allocation_command,
     add_slurm_script_command,
     cluster_overrides,
@@ -168,7 +169,7 @@ def _cmd_run_in_allocation(args, plain) -> int:
     if plan is None or cfg.edges is not None:
         return plain(args)
     with allocation_client(args.scheduler_file, expected_workers=args.expected_workers,
-                           timeout=args.timeout) as session:
+                           timeout=args.timeout, credentials=args.credentials) as session:
         store = run_to_precision(cfg, client=session.client, store_path=args.store,
                                  fresh=args.fresh, progress=args.progress,
                                  max_in_flight=session.max_in_flight)
@@ -297,6 +298,7 @@ def build_parser() -> argparse.ArgumentParser:
     q.set_defaults(func=_cmd_run)
 
     add_slurm_script_command(sub)
+    add_credentials_command(sub)
     q = add_run_in_allocation_command(sub)
     plain = q.get_default("func")
     q.set_defaults(func=lambda args, plain=plain: _cmd_run_in_allocation(args, plain))

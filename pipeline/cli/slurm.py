@@ -19,6 +19,7 @@ from pipeline.sweep.clusters import (
     render_batch_script,
     resolve_cluster_settings,
     submit_batch_script,
+    write_credentials,
 )
 from pipeline.sweep.config import load_config
 from pipeline.sweep.driver import run_in_allocation
@@ -112,7 +113,7 @@ def _cmd_run_in_allocation(args) -> int:
     if cfg.edges is not None:  # the edge-network model: pools on the job's workers
         plan_network(cfg)
         with allocation_client(args.scheduler_file, expected_workers=args.expected_workers,
-                               timeout=args.timeout) as session:
+                               timeout=args.timeout, credentials=args.credentials) as session:
             res = run_network(cfg, client=session.client, fresh=args.fresh,
                               progress=args.progress)
         print(f"helisweep: {res['netcdf']} written (edge-network model)", file=sys.stderr,
@@ -120,7 +121,21 @@ def _cmd_run_in_allocation(args) -> int:
         return 0
     run_in_allocation(args.config, scheduler_file=args.scheduler_file, store_path=args.store,
                       expected_workers=args.expected_workers, timeout=args.timeout,
-                      fresh=args.fresh, progress=args.progress)
+                      fresh=args.fresh, progress=args.progress, credentials=args.credentials)
+    return 0
+
+
+def add_credentials_command(subparsers) -> argparse.ArgumentParser:
+    """``helisweep credentials DIR``: write a batch job's TLS credentials (job script use)."""
+    q = subparsers.add_parser("credentials",
+                              help="write TLS credentials for one batch job (used by the job script)")
+    q.add_argument("directory", help="new directory for ca.pem, cert.pem, key.pem (owner-only)")
+    q.set_defaults(func=_cmd_credentials)
+    return q
+
+
+def _cmd_credentials(args) -> int:
+    print(write_credentials(args.directory))
     return 0
 
 
@@ -134,6 +149,8 @@ def add_run_in_allocation_command(subparsers) -> argparse.ArgumentParser:
     q.add_argument("--expected-workers", dest="expected_workers", type=int, default=1)
     q.add_argument("--timeout", type=float, default=600.0, help="seconds to wait for a worker")
     q.add_argument("--fresh", action="store_true")
+    q.add_argument("--credentials", help="the job's TLS credentials directory (written by "
+                   "`helisweep credentials`)")
     q.add_argument("--progress", action="store_true", help="progress output (in a job log: a plain line every 5 %% of the work or every minute)")
     q.set_defaults(func=_cmd_run_in_allocation)
     return q

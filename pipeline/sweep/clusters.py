@@ -1003,8 +1003,10 @@ def submit_batch_script(text: str, directory: str | Path) -> str:
         fh.write(text)
     os.chmod(name, 0o644)
     try:
+        # the job inherits the submitter's umask (sbatch passes it on as SLURM_UMASK): its
+        # log file and everything it writes are then owner-only
         out = subprocess.run(["sbatch", "--parsable", name], capture_output=True, text=True,
-                             timeout=120)
+                             timeout=120, umask=0o077)
     except FileNotFoundError:
         raise ClusterError(
             f"'sbatch' was not found on PATH; submit from a Slurm login node (or load the Slurm "
@@ -1024,9 +1026,54 @@ def submit_batch_script(text: str, directory: str | Path) -> str:
     return job_id
 
 
+#: file names of a batch job's TLS credentials (see write_credentials)
+CREDENTIAL_FILES = ("ca.pem", "cert.pem", "key.pem")
+
+
+def write_credentials(directory: str | Path) -> Path:
+    """Write TLS credentials made for one batch job: a self-signed certificate that is its own
+    authority, and its key (Dask's temporary credentials), owner-only.
+
+    The job's scheduler, workers and driver all present this certificate and accept only
+    peers that present it, so no other account can connect to the job's scheduler.
+
+    Parameters
+    ----------
+    directory : str or Path
+        Created with mode 0700 (it must not exist yet: each job makes its own).
+
+    Returns
+    -------
+    Path
+        The directory, holding ``ca.pem``, ``cert.pem`` and ``key.pem`` (mode 0600).
+    """
+    from distributed.security import Security  # heavy: only where a cluster is used
+
+    directory = Path(directory)
+    directory.mkdir(mode=0o700, parents=False, exist_ok=False)
+    directory.chmod(0o700)
+    sec = Security.temporary()
+    for name, text in zip(CREDENTIAL_FILES, (sec.tls_ca_file, sec.tls_worker_cert,
+                                              sec.tls_worker_key)):
+        fd = os.open(directory / name, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600)
+        with os.fdopen(fd, "w", encoding="utf-8") as fh:
+            fh.write(text)
+    return directory
+
+
+def credentials_security(directory: str | Path):
+    """The ``distributed.security.Security`` of a client holding a job's credentials."""
+    from distributed.security import Security  # heavy: only where a cluster is used
+
+    ca, cert, key = (str(Path(directory) / n) for n in CREDENTIAL_FILES)
+    return Security(tls_ca_file=ca, tls_client_cert=cert, tls_client_key=key,
+                    require_encryption=True)
+
+
 @contextmanager
 def allocation_client(scheduler_file: str | Path, *, expected_workers: int = 1,
-                      timeout: float = 600.0) -> Iterator[ClientSession]:
+                      timeout: float = 600.0,
+                      credentials: str | Path | None = None) -> Iterator[ClientSession]:
     """A client on the Dask cluster a batch job started (scheduler file mode).
 
     Connects with ``Client(scheduler_file=...)`` and waits up to ``timeout`` seconds for the
@@ -1041,6 +1088,9 @@ def allocation_client(scheduler_file: str | Path, *, expected_workers: int = 1,
         Workers the job starts (sizes the window of tasks in flight).
     timeout : float
         Seconds to wait for the first worker.
+    credentials : str or Path, optional
+        The job's TLS credentials (:func:`write_credentials`); the scheduler accepts no client
+        without them.
 
     Yields
     ------
@@ -1048,7 +1098,8 @@ def allocation_client(scheduler_file: str | Path, *, expected_workers: int = 1,
     """
     from dask.distributed import Client  # heavy: only when a cluster is used
 
-    client = Client(scheduler_file=str(scheduler_file), timeout="120s")
+    security = credentials_security(credentials) if credentials is not None else None
+    client = Client(scheduler_file=str(scheduler_file), timeout="120s", security=security)
     try:
         try:
             client.wait_for_workers(1, timeout=timeout)

@@ -389,12 +389,13 @@ def run_on_cluster(cfg: SweepConfig, overrides: Mapping[str, Any] | None = None,
 def run_in_allocation(config_path: str | Path, *, scheduler_file: str | Path,
                       store_path: str | Path | None = None, expected_workers: int = 1,
                       timeout: float = 600.0, fresh: bool = False,
-                      progress: bool = False) -> SampleStore:
+                      progress: bool = False,
+                      credentials: str | Path | None = None) -> SampleStore:
     """Run (or resume) a sweep on the Dask cluster of a batch job, then shut it down (see
     :func:`pipeline.sweep.clusters.allocation_client`)."""
     cfg = load_config(config_path)
     with allocation_client(scheduler_file, expected_workers=expected_workers,
-                           timeout=timeout) as session:
+                           timeout=timeout, credentials=credentials) as session:
         store = run_sweep(cfg, client=session.client, store_path=store_path, fresh=fresh,
                           progress=progress, max_in_flight=session.max_in_flight)
         c = store.counts()
