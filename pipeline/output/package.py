@@ -48,6 +48,7 @@ from pipeline.jsonsafe import json_safe
 from pipeline.output.figures import RunData, load_run, make_figures
 from pipeline.output.methods import methods_text, store_facts
 from pipeline.sweep.config import AXES
+from pipeline.sweep.identity import sha256_file
 from pipeline.timestamps import utc_now
 from pipeline.transport.environment import describe as describe_environment
 from pipeline.transport.solver import MUMPS_ORDERING, SOLVER_NAME
@@ -66,14 +67,6 @@ _VERSIONED = ("xarray", "zarr", "dask", "distributed", "matplotlib", "h5netcdf",
 
 
 # --------------------------------------------------------------------------- small helpers
-def _sha256(path: Path) -> str:
-    h = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for block in iter(lambda: fh.read(1 << 20), b""):
-            h.update(block)
-    return h.hexdigest()
-
-
 def _inside(path: Path, root: Path) -> bool:
     try:
         path.relative_to(root)
@@ -361,7 +354,7 @@ def _manifest(folder: Path) -> str:
         rel = path.relative_to(folder).as_posix()
         if rel == MANIFEST_NAME:
             continue
-        lines.append(f"{_sha256(path)}  {rel}")
+        lines.append(f"{sha256_file(path)}  {rel}")
     return "\n".join(lines) + "\n"
 
 
@@ -537,7 +530,7 @@ def _verify_folder(folder: Path) -> list[str]:
             problems.append(f"{name}: is a symbolic link")
         elif not path.is_file():
             problems.append(f"{name}: listed in the manifest but missing")
-        elif _sha256(path) != digest:
+        elif sha256_file(path) != digest:
             problems.append(f"{name}: SHA-256 does not match the manifest (file changed)")
     for path in sorted(folder.rglob("*")):
         rel = path.relative_to(folder).as_posix()

@@ -31,7 +31,7 @@ from pipeline.physics.disorder import RANDOM_SCHEME_VERSION
 from pipeline.sweep.config import SweepConfig, config_hash
 
 __all__ = ['STORE_LAYOUT', 'IDENTITY_COMPONENTS', 'run_identity', 'identity_changes',
-           'describe_changes']
+           'describe_changes', 'sha256_file']
 
 #: format of the sample store's layout (also the store's ``format`` attribute)
 STORE_LAYOUT = "helisweep-samples/1"
@@ -48,7 +48,8 @@ _WHAT = {
 }
 
 
-def _sha256_file(path: Path) -> str:
+def sha256_file(path: str | Path) -> str:
+    """SHA-256 of a file's bytes (hex), read in 1 MiB blocks."""
     h = hashlib.sha256()
     with open(path, "rb") as fh:
         for block in iter(lambda: fh.read(1 << 20), b""):
@@ -84,7 +85,7 @@ def run_identity(cfg: SweepConfig) -> dict[str, str]:
     if cfg.device.file is not None:
         path = Path(cfg.base_dir) / cfg.device.file
         try:
-            geometry = _sha256_file(path)
+            geometry = sha256_file(path)
         except OSError as exc:
             raise ConfigError(f"the geometry file {str(path)!r} cannot be read ({exc}); check "
                               f"'device.file' (relative paths start at the config file)") from exc
