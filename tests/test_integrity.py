@@ -59,7 +59,7 @@ def _layout_run(tmp_path, width=40.0, realisations=2):
     path.write_text(_text(tmp_path, realisations))
     cfg = load_config(path)
     store_path = cfg.run_dir / "samples.zarr"
-    SampleStore.open_for_run(store_path, cfg, ("L", "R"), provenance={"test": True})
+    SampleStore.open_for_run(store_path, cfg, ("L", "R"), provenance={"test": True}).release_lock()
     return path, store_path
 
 
@@ -83,7 +83,7 @@ def test_an_edited_layout_is_refused_before_compute_and_the_store_is_untouched(t
     assert "never deleted" in msg
     assert _attrs(store_path) == before
     # --fresh moves the old store aside, it does not delete it
-    SampleStore.open_for_run(store_path, cfg, ("L", "R"), provenance={}, fresh=True)
+    SampleStore.open_for_run(store_path, cfg, ("L", "R"), provenance={}, fresh=True).release_lock()
     aside = list(store_path.parent.glob("samples.zarr.replaced-*"))
     assert len(aside) == 1 and _attrs(aside[0])["identity"] == before["identity"]
 
@@ -94,6 +94,7 @@ def test_more_realisations_of_the_same_layout_still_resume(tmp_path):
     cfg = load_config(cfg_path)
     SampleStore.check_resume(store_path, cfg)
     store = SampleStore.open_for_run(store_path, cfg, ("L", "R"), provenance={})
+    store.release_lock()
     assert store.shape[0] == 5
 
 
@@ -118,7 +119,7 @@ def test_a_store_from_before_identities_records_its_identity_on_resume(tmp_path)
     group = zarr.open_group(str(store_path), mode="r+")
     del group.attrs["identity"]
     cfg = load_config(cfg_path)
-    SampleStore.open_for_run(store_path, cfg, ("L", "R"), provenance={})
+    SampleStore.open_for_run(store_path, cfg, ("L", "R"), provenance={}).release_lock()
     attrs = _attrs(store_path)
     assert attrs["identity"] == run_identity(cfg)
     assert "not checked" in attrs["identity_recorded_late"]
@@ -166,5 +167,5 @@ def test_partial_and_finished_stores_open_in_xarray_without_warnings(tmp_path, d
     assert int((finished["status"].values == 1).sum()) == finished["status"].size
     # a grown store: the consolidated metadata follows the new realisation axis
     more = parse_config(tiny_config(tmp_path / "run", 6))
-    SampleStore.open_for_run(path, more, ("L", "R"), provenance={})
+    SampleStore.open_for_run(path, more, ("L", "R"), provenance={}).release_lock()
     assert _open_quietly(path).sizes["realisation"] == 6

@@ -235,3 +235,35 @@ def test_a_client_without_the_runs_credentials_is_refused(tmp_path):
         assert "127.0.0.1" in client.dashboard_link  # the dashboard stays on this node
     finally:
         close()
+
+
+#: realisations of the time-limit test: about 100 s of work on two workers here, so that a job
+#: with Slurm's shortest time limit (1 minute) stops mid-sweep
+_EXPIRY_REALISATIONS = 240
+
+
+def test_a_job_killed_at_its_time_limit_is_completed_by_resubmission(tmp_path, tiny_config_text,
+                                                                    dask_clients, jobs):
+    cfg_path = tmp_path / "expiry.toml"
+    cfg_path.write_text(tiny_config_text(realisations=_EXPIRY_REALISATIONS, **_LONG))
+    store = tmp_path / "store.zarr"
+    shared = tmp_path / "shared"
+    text, settings = _render(cfg_path, tmp_path, store, jobs=2, walltime="00:01:00")
+    total = _EXPIRY_REALISATIONS * 2 * 3
+    states, done_after = [], []
+    for _ in range(8):  # resubmit the same script until the run is complete, as a user would
+        job = submit_batch_script(text, settings.shared_directory)
+        jobs.append(job)
+        states.append(_wait_until_gone(job, shared, limit=400))
+        done_after.append(done_samples(store))
+        if states[-1] == "COMPLETED":
+            break
+        assert states[-1] == "TIMEOUT", _log(shared, job)[-4000:]
+    assert states[0] == "TIMEOUT" and states[-1] == "COMPLETED", states
+    assert 0 < done_after[0] < total, f"the first job did not stop mid-sweep: {done_after}"
+    reference = _local_reference(parse_config(cfg_path.read_text()), dask_clients[2],
+                                 tmp_path / "local.zarr")
+    _assert_same(store, reference)
+    sessions = SampleStore.open(store).group.attrs["sessions"]
+    assert len(sessions) == len(states) and "finished" in sessions[-1]
+    assert "finished" not in sessions[0]  # killed by Slurm at its time limit

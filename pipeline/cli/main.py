@@ -43,7 +43,7 @@ from pipeline.physics.materials import get_preset
 from pipeline.precision import plan_precision, precision_status, run_to_precision
 from pipeline.sweep.clusters import allocation_client, open_client
 from pipeline.sweep.config import load_config
-from pipeline.sweep.driver import run_on_cluster
+from pipeline.sweep.driver import check_before_cluster, run_on_cluster
 from pipeline.sweep.lock import describe_lock, read_lock
 from pipeline.sweep.runmodel import device_for
 from pipeline.sweep.store import SampleStore
@@ -141,9 +141,9 @@ def _cmd_run(args) -> int:
     if cfg.edges is not None:
         return _run_network(cfg, args)
     if plan is not None:
-        # a store holding other samples is refused before any cluster starts
-        SampleStore.check_resume(args.store or cfg.run_dir / "samples.zarr", cfg,
-                                 fresh=args.fresh)
+        # bad input, a store of another run or one in use: refused before any cluster starts
+        check_before_cluster(cfg, cluster_overrides(args), args.workers,
+                             args.store or cfg.run_dir / "samples.zarr", fresh=args.fresh)
         with open_client(cfg, cluster_overrides(args), workers=args.workers,
                          store_path=args.store) as session:
             store = run_to_precision(cfg, client=session.client, store_path=args.store,

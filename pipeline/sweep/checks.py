@@ -37,11 +37,15 @@ def validate_run(
     worker_memory_mb: float | None = None,
     *,
     fresh: bool = False,
+    cheap_only: bool = False,
 ) -> tuple[str, ...]:
-    """Everything that can be checked before compute: geometry, the identity of an existing
-    store (:meth:`pipeline.sweep.store.SampleStore.check_resume`; skipped with ``fresh``),
-    memory and disk, the discretisation, open lead modes. Cheap checks come first, so a lattice
-    far too fine is refused before anything large is built.
+    """Everything that can be checked before compute: geometry, memory and disk, the
+    discretisation, open lead modes, and last the store (:meth:`pipeline.sweep.store.
+    SampleStore.check_resume`: another run's store or one in use; skipped with ``fresh``).
+    Cheap checks come first, so a lattice far too fine is refused before anything large is
+    built. ``cheap_only=True`` checks geometry, labels and the store only: before a Slurm
+    cluster starts, when the workers' memory is not known yet (the driver runs the full checks
+    on the actual workers).
 
     Returns the contact names. Raises a :class:`HelisweepError` subclass with the fix.
     """
@@ -68,11 +72,15 @@ def validate_run(
 
         parse_measurement(label).indices(names)
     path = Path(store_path) if store_path else cfg.run_dir / "samples.zarr"
-    SampleStore.check_resume(path, cfg, fresh=fresh)
+    if cheap_only:
+        SampleStore.check_resume(path, cfg, fresh=fresh)
+        return names
     check_resources(cfg, n_workers or cfg.execution.workers or os.cpu_count() or 1, path,
                     worker_memory_mb)
     _check_discretisation(cfg)
     _check_open_modes(cfg, names)
+    # last: a bad input is named as such even when a store of another run is in the way
+    SampleStore.check_resume(path, cfg, fresh=fresh)
     return names
 
 

@@ -28,13 +28,14 @@ import numpy as np
 
 from pipeline.errors import ConfigWarning, StoreError
 from pipeline.sweep.checks import check_resources, validate_run
-from pipeline.sweep.clusters import allocation_client, open_client
+from pipeline.sweep.clusters import allocation_client, open_client, resolve_cluster_settings
 from pipeline.sweep.config import SweepConfig, config_hash, load_config
 from pipeline.sweep.store import SampleStore
 from pipeline.sweep.tasks import run_block
 from pipeline.transport.environment import describe
 
-__all__ = ['run_sweep', 'run_on_cluster', 'run_in_allocation', 'open_sweep', 'SweepSession']
+__all__ = ['run_sweep', 'run_on_cluster', 'run_in_allocation', 'open_sweep', 'SweepSession',
+           'check_before_cluster']
 
 
 #: a non-interactive progress line at least every this many seconds ...
@@ -369,6 +370,18 @@ def _write(store: SampleStore, key, reals, results) -> None:
         ) from exc
 
 
+def check_before_cluster(cfg: SweepConfig, overrides: Mapping[str, Any] | None,
+                         workers: int | None, store_path, *, fresh: bool = False) -> None:
+    """Refuse bad input, another run's store or a store in use before a cluster starts.
+
+    On this machine (kind "local") every check of :func:`pipeline.sweep.checks.validate_run`
+    runs; for Slurm only the cheap ones and the store (the memory checks need the workers,
+    the driver runs them on the actual workers).
+    """
+    kind = resolve_cluster_settings(cfg.cluster, overrides).kind
+    validate_run(cfg, workers, store_path, None, fresh=fresh, cheap_only=kind != "local")
+
+
 def run_on_cluster(cfg: SweepConfig, overrides: Mapping[str, Any] | None = None, *,
                    workers: int | None = None, **run_kwargs) -> SampleStore:
     """Run (or resume) a sweep on a client from :func:`pipeline.sweep.clusters.open_client`
@@ -378,7 +391,7 @@ def run_on_cluster(cfg: SweepConfig, overrides: Mapping[str, Any] | None = None,
     ``max_tasks``, ...). A store holding other samples is refused before the cluster starts.
     """
     path = run_kwargs.get("store_path") or cfg.run_dir / "samples.zarr"
-    SampleStore.check_resume(path, cfg, fresh=bool(run_kwargs.get("fresh", False)))
+    check_before_cluster(cfg, overrides, workers, path, fresh=bool(run_kwargs.get("fresh")))
     with open_client(cfg, overrides, workers=workers,
                      store_path=run_kwargs.get("store_path")) as session:
         if session.max_in_flight is not None:

@@ -173,7 +173,10 @@ class StoreLock:
     def _start(self, heartbeat_s: float) -> None:
         def beat():
             while not self._stop.wait(heartbeat_s):
-                self.heartbeat()
+                try:
+                    self.heartbeat()
+                except OSError:  # the store's directory is gone (moved or deleted): stop
+                    return
 
         self._thread = threading.Thread(target=beat, name="helisweep-lock-heartbeat",
                                         daemon=True)
