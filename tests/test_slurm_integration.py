@@ -237,9 +237,9 @@ def test_a_client_without_the_runs_credentials_is_refused(tmp_path):
         close()
 
 
-#: realisations of the time-limit test: about 100 s of work on two workers here, so that a job
+#: realisations of the time-limit test: a few minutes of work on two workers here, so that a job
 #: with Slurm's shortest time limit (1 minute) stops mid-sweep
-_EXPIRY_REALISATIONS = 240
+_EXPIRY_REALISATIONS = 1000
 
 
 def test_a_job_killed_at_its_time_limit_is_completed_by_resubmission(tmp_path, tiny_config_text,
