@@ -46,6 +46,7 @@ from typing import Any
 import numpy as np
 
 from pipeline.analysis.lstar_results import LStarResult, lstar_results
+from pipeline.analysis.statistics import IntervalFlag
 from pipeline.analysis.summary import summarize
 from pipeline.constants import H_OVER_E2_OHM
 from pipeline.device.drawing import OKABE_ITO, plot_device
@@ -483,8 +484,6 @@ def _stats_columns(ds: Any, unit: str) -> list[str]:
     return columns + [_col("quantised", unit)]
 
 
-#: value of the summary's ci_flag for rare large deviations (pipeline.analysis.statistics)
-_SPARSE_TAIL = 2
 _FLAG_COLOUR = "#c0392b"
 
 
@@ -502,7 +501,7 @@ def _mark_sparse_tails(ax: Any, x: np.ndarray, mean: np.ndarray, flags) -> None:
     its level), labelled once per axes with the most realisations any of them needs."""
     if flags is None:
         return
-    hit = flags[0] == _SPARSE_TAIL
+    hit = flags[0] == IntervalFlag.SPARSE_TAIL
     if not hit.any():
         return
     first = not any(getattr(a, "get_gid", lambda: None)() == "sparse-tail"

@@ -18,6 +18,7 @@ from typing import Any
 import numpy as np
 
 from pipeline.analysis.lstar_fits import POWER, SIGNIFICANCE
+from pipeline.analysis.statistics import IntervalFlag
 from pipeline.physics.disorder import describe
 from pipeline.sweep.config import SweepConfig
 from pipeline.sweep.runmodel import device_for, disorder_terms
@@ -105,7 +106,7 @@ def _quality_text(summary: Any) -> str:
     parts = []
     if "ci_flag" in summary:
         flags = np.asarray(summary["ci_flag"].values)
-        sparse = int((flags == 2).sum())
+        sparse = int((flags == IntervalFlag.SPARSE_TAIL).sum())
         parts.append(
             " The coverage of these intervals was measured on synthetic ensembles with known "
             "means (docs/statistics.md of helisweep): at 16 or more realisations they hold at "
