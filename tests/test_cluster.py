@@ -199,7 +199,7 @@ def test_batch_script_quotes_awkward_paths_and_names(tmp_path, tiny_config_text,
     lines = text.splitlines()
     block = "\n".join(lines[lines.index("# ---- values (each quoted for the shell) ----"):
                             lines.index("# ---- end of values ----")])
-    probe = block + '\nprintf "%s\\0" "$WORKDIR" "$CONFIG" "$SHARED" "$PYTHON" "${STORE_ARGS[@]}" "${INTERFACE_ARGS[@]}"'
+    probe = block + '\nprintf "%s\\0" "$WORKDIR" "$CONFIG" "$SHARED" "$PYTHON" "${DRIVER_ARGS[@]}" "${INTERFACE_ARGS[@]}"'
     out = subprocess.run(["bash", "-euc", probe], capture_output=True, text=True, check=True,
                          env={"PATH": os.environ["PATH"], "HOME": "/nonexistent"})
     assert out.stdout.split("\0")[:-1] == [
@@ -207,7 +207,7 @@ def test_batch_script_quotes_awkward_paths_and_names(tmp_path, tiny_config_text,
         "--interface", "lo"]
     # and shlex reads the same values from the assignment lines
     assign = dict(shlex.split(line)[0].split("=", 1) for line in block.splitlines()
-                  if "=" in line and not line.startswith(("#", "INTERFACE_ARGS", "STORE_ARGS")))
+                  if "=" in line and not line.startswith(("#", "INTERFACE_ARGS", "DRIVER_ARGS")))
     assert assign["CONFIG"] == str(cfg_path) and assign["WORKDIR"] == str(d)
     # the body uses only quoted expansions of the values
     assert "cd \"$WORKDIR\"" in text and "rm -rf \"$SCHEDULER_FILE\" \"$CREDENTIALS\"" in text
@@ -222,7 +222,7 @@ def test_batch_script_defaults_and_requeue(tmp_path, tiny_config_text, monkeypat
     assert opts["--job-name"] == "helisweep-tiny" and opts["--ntasks"] == "1"
     assert "--requeue" in opts and opts["--open-mode"] == "append"
     assert "--partition" not in opts and "--account" not in opts
-    assert "STORE_ARGS=()" in text and "INTERFACE_ARGS=()" in text
+    assert "DRIVER_ARGS=()" in text and "INTERFACE_ARGS=()" in text
     subprocess.run(["bash", "-n"], input=text, text=True, check=True)
 
 
@@ -643,3 +643,173 @@ def test_run_on_slurm_without_a_usable_configuration_fails_fast(tmp_path, tiny_c
     assert rc != 0
     assert "helisweep: error:" in err and "no-such/slurm.conf" in err and "--cluster local" in err
     assert not (tmp_path / "run" / "samples.zarr").exists()
+
+
+# ---------------------------------------------------------------- dashboard (issue 14, item 7)
+def _listening_hosts(pid: int) -> set[str]:
+    """Hosts of the TCP sockets a process and its children listen on."""
+    import psutil  # the test's own dependency for socket listings
+
+    procs = [psutil.Process(pid)] + psutil.Process(pid).children(recursive=True)
+    hosts = set()
+    for p in procs:
+        for c in p.net_connections(kind="tcp"):
+            if c.status == psutil.CONN_LISTEN:
+                hosts.add(c.laddr.ip)
+    return hosts
+
+
+def test_local_cluster_listens_on_loopback_only():
+    client, close = make_client(_slurm(kind="local"), n_workers_hint=1)
+    try:
+        hosts = _listening_hosts(os.getpid())
+        assert hosts and hosts <= {"127.0.0.1", "::1"}, hosts  # dashboard included
+    finally:
+        close()
+
+
+def test_dashboard_stays_on_the_node_unless_asked(tmp_path, tiny_config_text, monkeypatch):
+    monkeypatch.chdir(tmp_path)
+    cfg_path = _write_config(tmp_path, tiny_config_text(realisations=1), name="d.toml")
+    s = _slurm()
+    assert s.dashboard_address == "127.0.0.1:0" and not cl.dashboard_is_exposed(s.dashboard_address)
+    opts = cl.slurm_cluster_options(s)
+    assert opts["scheduler_options"]["dashboard_address"] == "127.0.0.1:0"
+    assert "--dashboard-address 127.0.0.1:0 &" in _quiet_render(cfg_path, s)
+    asked = _slurm(dashboard_address="0.0.0.0:8787")
+    assert cl.dashboard_is_exposed(asked.dashboard_address)
+    assert cl.slurm_cluster_options(asked)["scheduler_options"]["dashboard_address"] == "0.0.0.0:8787"
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", SharedPathWarning)
+        with pytest.warns(cl.ConfigWarning, match=r"'0.0.0.0:8787' \(command line\).*no login"):
+            text = render_batch_script(cfg_path, asked)
+    assert "--dashboard-address 0.0.0.0:8787 &" in text
+    with pytest.raises(ConfigError, match=r"'dashboard_address' = 'everywhere'.*host:port"):
+        _slurm(dashboard_address="everywhere")
+    # from the config too, and from the command line's --dashboard-address
+    cfg = parse_config(tiny_config_text(realisations=1) + '\n[cluster]\ndashboard_address = ":8788"\n')
+    assert resolve_cluster_settings(cfg.cluster, {"site_defaults": None}).dashboard_address == ":8788"
+    p = argparse.ArgumentParser()
+    add_cluster_options(p)
+    assert cluster_overrides(p.parse_args(["--dashboard-address", "10.0.0.1:1"]))["dashboard_address"] == "10.0.0.1:1"
+
+
+# ------------------------------------------------------- no worker for too long (issue 14, item 8)
+class _FakeClock:
+    def __init__(self):
+        self.t = 0.0
+
+    def __call__(self):
+        return self.t
+
+
+class _Workers:
+    """Stands in for a client: only the scheduler's worker table is read."""
+
+    def __init__(self):
+        self.n = 0
+
+    def scheduler_info(self):
+        return {"workers": {f"w{i}": {} for i in range(self.n)}}
+
+
+def test_watchdog_counts_time_without_any_worker():
+    clock, client = _FakeClock(), _Workers()
+    dog = cl.WorkerWatchdog(client, 60, lambda s: f"none for {s:.0f} s", clock=clock)
+    clock.t = 59
+    dog.check()                      # not yet
+    client.n = 1
+    clock.t = 100
+    dog.check()                      # a worker came: the clock restarts
+    client.n = 0
+    clock.t = 130
+    dog.check()                      # workers gone since this check
+    clock.t = 189
+    dog.check()
+    clock.t = 190
+    with pytest.raises(ClusterError, match="none for 60 s"):
+        dog.check()
+    assert dog.poll_seconds == 10.0 and cl.WorkerWatchdog(client, 1, str).poll_seconds == 0.5
+
+
+def test_a_run_whose_workers_never_come_stops_with_an_error(tmp_path, tiny_config_text):
+    # a real scheduler that accepted the run but never gets a worker (as Slurm jobs that wait
+    # in the queue for ever with adaptive_minimum = 0)
+    from dask.distributed import Client, LocalCluster
+
+    cfg = parse_config(tiny_config_text(realisations=2))
+    cluster = LocalCluster(n_workers=0, processes=True, dashboard_address="127.0.0.1:0",
+                           silence_logs=40)
+    client = Client(cluster)
+    try:
+        cl._WATCHDOGS[client] = cl.WorkerWatchdog(client, 2.0, lambda s: f"no worker for {s:.1f} s")
+        with pytest.raises(ClusterError, match="no worker for"):
+            run_sweep(cfg, client=client, store_path=tmp_path / "w.zarr", progress=False)
+    finally:
+        client.close()
+        cluster.close()
+    # nothing computed, nothing lost: the store holds no sample and its lock is released
+    from pipeline.sweep.store import SampleStore
+
+    store = SampleStore.open(tmp_path / "w.zarr")
+    assert store.counts()["done"] == 0
+    assert not (tmp_path / "w.zarr.lock").exists()
+
+
+def test_batch_script_with_retry_failed_recomputes_failed_samples(tmp_path, tiny_config_text,
+                                                                   tiny_reference, monkeypatch):
+    # a store with failed samples (an injected solver failure at one energy, in-process), then
+    # the batch script rendered with --retry-failed, run for real with a stand-in srun
+    from dask.distributed import Client
+
+    import pipeline.sweep.tasks as tasks
+    from pipeline.sweep.store import SampleStatus, SampleStore
+
+    d = tmp_path / "retry"
+    cfg_path = _write_config(d, tiny_config_text(realisations=1), name="tiny.toml")
+    store = d / "s.zarr"
+    original = tasks.transmission_matrix
+
+    def flaky(dsys, energy, params, **kw):
+        if energy == 1.0:
+            raise RuntimeError("injected solver failure")
+        return original(dsys, energy, params, **kw)
+
+    monkeypatch.setattr(tasks, "transmission_matrix", flaky)
+    with Client(processes=False, n_workers=1, threads_per_worker=1,
+                dashboard_address="127.0.0.1:0") as client:
+        run_sweep(parse_config(cfg_path.read_text()), client=client, store_path=store,
+                  progress=False)
+    monkeypatch.setattr(tasks, "transmission_matrix", original)
+    assert (SampleStore.open(store).status() == SampleStatus.FAILED).sum() == 2
+    bindir = tmp_path / "bin"
+    bindir.mkdir()
+    (bindir / "srun").write_text('#!/bin/bash\nwhile [[ "$1" == --* ]]; do shift; done\nexec "$@"\n')
+    (bindir / "srun").chmod(0o755)
+    monkeypatch.chdir(d)
+    shared = d / "shared"
+    s = _slurm(interface="lo", shared_directory=str(shared), memory="1GB", worker_timeout=120)
+    text = _quiet_render(cfg_path, s, store_path=store, job_name="j", retry_failed=True)
+    assert "--retry-failed" in text and "--retry-failed" not in _quiet_render(cfg_path, s)
+    (d / "job.sbatch").write_text(text)
+    (shared / "logs").mkdir(parents=True)
+    env = {k: v for k, v in os.environ.items() if not k.startswith("SLURM_")}
+    env["PATH"] = f"{bindir}{os.pathsep}{env['PATH']}"
+    out = subprocess.run(["bash", str(d / "job.sbatch")], env=env, capture_output=True,
+                         text=True, timeout=300)
+    assert out.returncode == 0, out.stderr[-3000:]
+    assert "6 done, 0 failed, 0 missing of 6 samples" in out.stdout + out.stderr
+    assert_same_samples(store_arrays(store), tiny_reference)
+    # the failures stay in the history, marked retried
+    history = SampleStore.open(store).group.attrs["failures"]
+    assert len(history) == 2 and all("retried" in f for f in history)
+    # the slurm-script command passes the flag through
+    p = argparse.ArgumentParser()
+    sub = p.add_subparsers()
+    from pipeline.cli.slurm import add_run_in_allocation_command, add_slurm_script_command
+
+    add_slurm_script_command(sub)
+    add_run_in_allocation_command(sub)
+    assert p.parse_args(["slurm-script", "c.toml", "--retry-failed"]).retry_failed
+    assert p.parse_args(["run-in-allocation", "c.toml", "--scheduler-file", "f",
+                         "--retry-failed"]).retry_failed

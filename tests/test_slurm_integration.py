@@ -146,6 +146,37 @@ def test_slurmcluster_with_two_one_core_jobs_equals_local(tmp_path, tiny_config_
     assert not any(_in_queue(j) for j in job_ids)
 
 
+def test_adaptive_scaling_from_zero_jobs_equals_local(tmp_path, tiny_config_text, dask_clients):
+    # adaptive_minimum = 0: no job (and no worker) exists until tasks are queued
+    cfg = parse_config(tiny_config_text(realisations=2))
+    reference = _local_reference(cfg, dask_clients[2], tmp_path / "local.zarr")
+    store = run_on_cluster(cfg, _overrides(tmp_path, adaptive_minimum=0, adaptive_maximum=2),
+                           store_path=tmp_path / "slurm.zarr", progress=False)
+    _assert_same(store.path, reference)
+
+
+def test_jobs_that_never_start_stop_the_run_with_slurms_reason(tmp_path, tiny_config_text):
+    # Slurm accepts the worker jobs (sbatch --test-only passes) but holds them for an hour:
+    # without a watchdog the driver would wait for ever
+    from pipeline.sweep.clusters import ClusterError
+
+    cfg = parse_config(tiny_config_text(realisations=2))
+    t0 = time.monotonic()
+    with pytest.raises(ClusterError, match=r"no Dask worker for \d+ s while tasks wait.*"
+                                           r"worker_timeout = 15 s.*BeginTime.*--cluster local"):
+        run_on_cluster(cfg, _overrides(tmp_path, adaptive_minimum=0, adaptive_maximum=1,
+                                       worker_timeout=15,
+                                       extra_directives=["--begin=now+3600"]),
+                       store_path=tmp_path / "held.zarr", progress=False)
+    assert time.monotonic() - t0 < 120
+    # the held jobs were cancelled with the cluster; the store holds nothing and is unlocked
+    out = subprocess.run(["squeue", "-h", "--me", "-n", "helisweep-tiny", "-o", "%i"],
+                         capture_output=True, text=True, timeout=30)
+    assert not out.stdout.strip(), out.stdout
+    assert done_samples(tmp_path / "held.zarr") == 0
+    assert not (tmp_path / "held.zarr.lock").exists()
+
+
 # =========================================================================== batch mode
 def test_batch_script_through_sbatch_equals_local(tmp_path, tiny_config_text, dask_clients, jobs):
     cfg_path = tmp_path / "tiny.toml"

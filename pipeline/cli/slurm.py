@@ -9,6 +9,7 @@ import sys
 from pathlib import Path
 from typing import Any
 
+from pipeline.errors import ConfigError
 from pipeline.network.plan import plan_network
 from pipeline.network.run import run_network
 from pipeline.sweep.clusters import (
@@ -42,7 +43,11 @@ def _add_resource_options(p: argparse.ArgumentParser) -> None:
     g.add_argument("--directive", dest="extra_directives", action="append", metavar="--OPT=VAL",
                    help="extra #SBATCH directive (repeatable; replaces the configured list)")
     g.add_argument("--worker-timeout", dest="worker_timeout", type=float, metavar="SECONDS",
-                   help="seconds to wait for the first worker")
+                   help="seconds a run may go without any worker (at the start or when "
+                        "jobs end) before it stops with an error")
+    g.add_argument("--dashboard-address", dest="dashboard_address", metavar="HOST:PORT",
+                   help='where the Dask dashboard listens (default "127.0.0.1:0": this node '
+                        'only; reach it with ssh -L)')
     g.add_argument("--site-defaults", dest="site_defaults", metavar="TOML",
                    help=f"site defaults file (default ${SITE_CONFIG_ENV} or {HOME_SITE_FILE})")
 
@@ -83,6 +88,9 @@ def add_slurm_script_command(subparsers) -> argparse.ArgumentParser:
     p.add_argument("--job-name", dest="job_name", help="Slurm job name (default helisweep-<run name>)")
     p.add_argument("--requeue", action="store_true", default=None,
                    help="#SBATCH --requeue: a preempted job is requeued and resumes")
+    p.add_argument("--retry-failed", dest="retry_failed", action="store_true",
+                   help="each run of the script computes the store's failed samples again "
+                        "(their failure records stay in the store's history)")
     _add_resource_options(p)
     p.set_defaults(func=_cmd_slurm_script)
     return p
@@ -92,7 +100,8 @@ def _cmd_slurm_script(args) -> int:
 
     cfg = load_config(args.config)
     settings = resolve_cluster_settings(cfg.cluster, {**cluster_overrides(args), "kind": "slurm"})
-    text = render_batch_script(args.config, settings, store_path=args.store, job_name=args.job_name)
+    text = render_batch_script(args.config, settings, store_path=args.store, job_name=args.job_name,
+                               retry_failed=args.retry_failed)
     # sbatch does not create the directory of the job's log file
     (Path(settings.shared_directory) / "logs").mkdir(parents=True, exist_ok=True)
     if args.out:
@@ -111,6 +120,12 @@ def _cmd_slurm_script(args) -> int:
 def _cmd_run_in_allocation(args) -> int:
     cfg = load_config(args.config)
     if cfg.edges is not None:  # the edge-network model: pools on the job's workers
+        if args.retry_failed:
+            raise ConfigError(
+                f"--retry-failed recomputes failed samples of a direct sweep, but "
+                f"{args.config!r} has an [edges] table (the edge-network model keeps no failed "
+                f"samples to retry); drop --retry-failed"
+            )
         plan_network(cfg)
         with allocation_client(args.scheduler_file, expected_workers=args.expected_workers,
                                timeout=args.timeout, credentials=args.credentials) as session:
@@ -121,7 +136,8 @@ def _cmd_run_in_allocation(args) -> int:
         return 0
     run_in_allocation(args.config, scheduler_file=args.scheduler_file, store_path=args.store,
                       expected_workers=args.expected_workers, timeout=args.timeout,
-                      fresh=args.fresh, progress=args.progress, credentials=args.credentials)
+                      fresh=args.fresh, progress=args.progress, credentials=args.credentials,
+                      retry_failed=args.retry_failed)
     return 0
 
 
@@ -149,6 +165,8 @@ def add_run_in_allocation_command(subparsers) -> argparse.ArgumentParser:
     q.add_argument("--expected-workers", dest="expected_workers", type=int, default=1)
     q.add_argument("--timeout", type=float, default=600.0, help="seconds to wait for a worker")
     q.add_argument("--fresh", action="store_true")
+    q.add_argument("--retry-failed", dest="retry_failed", action="store_true",
+                   help="compute the store's failed samples again")
     q.add_argument("--credentials", help="the job's TLS credentials directory (written by "
                    "`helisweep credentials`)")
     q.add_argument("--progress", action="store_true", help="progress output (in a job log: a plain line every 5 %% of the work or every minute)")

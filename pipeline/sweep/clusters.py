@@ -36,8 +36,10 @@ import shlex
 import subprocess
 import sys
 import tempfile
+import time
 import tomllib
 import warnings
+import weakref
 from collections.abc import Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass, field, fields
@@ -45,19 +47,20 @@ from pathlib import Path
 from types import MappingProxyType
 from typing import Any, Callable, Mapping
 
-from pipeline.errors import ClusterError, ConfigError, SharedPathWarning
+from pipeline.errors import ClusterError, ConfigError, ConfigWarning, SharedPathWarning
 from pipeline.sweep.config import load_config
 from pipeline.sweep.store import block_size
 
-__all__ = ['local_client', 'ClientSession', 'open_client', 'allocation_client', 'HOME_SITE_FILE', 'SETTING_NAMES', 'ClusterError', 'ClusterSettings', 'DEFAULTS', 'SITE_CONFIG_ENV', 'SharedPathWarning', 'batch_template_path', 'make_client', 'render_batch_script', 'resolve_cluster_settings', 'site_defaults_path', 'slurm_cluster', 'slurm_cluster_options', 'submit_batch_script']
+__all__ = ['local_client', 'ClientSession', 'WorkerWatchdog', 'watchdog_for', 'dashboard_is_exposed', 'open_client', 'allocation_client', 'HOME_SITE_FILE', 'SETTING_NAMES', 'ClusterError', 'ClusterSettings', 'DEFAULTS', 'SITE_CONFIG_ENV', 'SharedPathWarning', 'batch_template_path', 'make_client', 'render_batch_script', 'resolve_cluster_settings', 'site_defaults_path', 'slurm_cluster', 'slurm_cluster_options', 'submit_batch_script']
 
 
 # --------------------------------------------------------------------------- driver
-def local_client(workers: int = 0):
+def local_client(workers: int = 0, *, dashboard_address: str = "127.0.0.1:0"):
     """A Dask client on a LocalCluster: one single-threaded process per core.
 
     BLAS and OpenMP are limited to one thread per worker (two threads per process gained
-    nothing here and halved throughput when processes shared the cores).
+    nothing here and halved throughput when processes shared the cores). Scheduler, workers
+    and (by default) the dashboard listen on the loopback interface only.
     """
     from dask.distributed import Client, LocalCluster  # heavy: only where a cluster is used
 
@@ -65,7 +68,7 @@ def local_client(workers: int = 0):
         os.environ[var] = "1"
     n = workers or os.cpu_count() or 1
     cluster = LocalCluster(n_workers=n, threads_per_worker=1, processes=True,
-                           dashboard_address=":0", silence_logs=40)
+                           dashboard_address=dashboard_address, silence_logs=40)
     return Client(cluster)
 
 
@@ -123,6 +126,9 @@ class ClusterSettings:
     worker_timeout: float
     #: batch mode: ``#SBATCH --requeue`` (a preempted job is requeued and resumes)
     requeue: bool
+    #: where the Dask dashboard listens, "host:port" (default loopback: this node only;
+    #: reach it with ``ssh -L``)
+    dashboard_address: str
     #: the site defaults file that was read (None: none)
     site_file: str | None = None
     #: where each setting came from: ((name, origin), ...)
@@ -284,6 +290,21 @@ def _v_timeout(v):
     return float(v)
 
 
+def _v_dashboard(v):
+    v = _check_text(v).strip()
+    host, sep, port = v.rpartition(":")
+    if not sep or not port.isdigit() or int(port) > 65535 or not re.fullmatch(r"[A-Za-z0-9_.\-\[\]:]*", host):
+        raise ConfigError('is not "host:port"; e.g. "127.0.0.1:0" (this node only, any free '
+                          'port, the default) or "0.0.0.0:8787" (every interface)')
+    return v
+
+
+def dashboard_is_exposed(address: str) -> bool:
+    """Whether a dashboard address listens beyond this node (anything but loopback)."""
+    host = address.rpartition(":")[0].strip("[]")
+    return host not in ("127.0.0.1", "localhost", "::1") and not host.startswith("127.")
+
+
 def _v_bool(v):
     if not isinstance(v, bool):
         raise ConfigError("must be true or false")
@@ -318,6 +339,7 @@ _SETTINGS: dict[str, _Setting] = {
     "python": _Setting(sys.executable, _v_python),
     "worker_timeout": _Setting(600.0, _v_timeout, "--worker-timeout"),
     "requeue": _Setting(False, _v_bool, "--requeue"),
+    "dashboard_address": _Setting("127.0.0.1:0", _v_dashboard, "--dashboard-address"),
 }
 
 #: the packaged defaults (memory None: 2 GB per core)
@@ -491,6 +513,16 @@ def _warn_if_node_local(path: str | Path, what: str) -> None:
 
 
 # =========================================================================== dask-jobqueue
+def _warn_if_exposed(settings: ClusterSettings) -> None:
+    if dashboard_is_exposed(settings.dashboard_address):
+        warnings.warn(
+            f"the Dask dashboard will listen on {settings.dashboard_address!r} "
+            f"({settings.source_of('dashboard_address')}), reachable from other machines: it "
+            f"has no login and shows the run's tasks, logs and profiles to anyone who finds the "
+            f"port. Leave dashboard_address at its default ('127.0.0.1:0') and use `ssh -L` "
+            f"unless the network is yours alone", ConfigWarning, stacklevel=3)
+
+
 def _lifetime_args(walltime_seconds: int) -> list[str]:
     """Retire workers gracefully before Slurm kills them; adaptive scaling replaces them."""
     if walltime_seconds < 600:
@@ -538,8 +570,9 @@ def slurm_cluster_options(settings: ClusterSettings, *, job_name: str = "heliswe
     if settings.account:
         directives.append(f"--account={shlex.quote(settings.account)}")
     directives += list(settings.extra_directives)
-    # the dashboard stays on this node (reach it with `ssh -L`); it shows task details
-    scheduler_options = {"dashboard_address": "127.0.0.1:0"}
+    # the dashboard stays on this node unless asked (reach it with `ssh -L`); it shows task
+    # details and has no login
+    scheduler_options = {"dashboard_address": settings.dashboard_address}
     return dict(
         cores=settings.cores,
         processes=settings.cores,
@@ -652,8 +685,9 @@ def make_client(settings: ClusterSettings, *, n_workers_hint: int = 0,
     ``adapt(minimum_jobs=jobs, maximum_jobs=jobs)``, so that a job that reached its walltime
     (its workers retire shortly before, see ``--lifetime``) is replaced by a new one.
     """
+    _warn_if_exposed(settings)
     if settings.kind == "local":
-        client = local_client(n_workers_hint)
+        client = local_client(n_workers_hint, dashboard_address=settings.dashboard_address)
         return client, _closer(client, client.cluster)
     from dask.distributed import Client  # heavy: only where a cluster is used
 
@@ -774,6 +808,84 @@ def _wait_for_workers(client, settings: ClusterSettings, n: int = 1) -> None:
         ) from None
 
 
+class WorkerWatchdog:
+    """Stops a run whose cluster has had no Dask worker for ``timeout`` seconds while tasks
+    wait: jobs that Slurm accepted but never starts (or that fail at start) would otherwise
+    keep the driver waiting with no end.
+
+    The driver calls :meth:`check` whenever no task has finished for :attr:`poll_seconds`.
+    The clock starts when the watchdog is made (the cluster's start) and restarts whenever a
+    check finds a worker, so a job that ends at its walltime and is replaced in time does not
+    stop the run.
+
+    Parameters
+    ----------
+    client : distributed.Client
+    timeout : float
+        Seconds without any worker before :meth:`check` raises.
+    explain : callable
+        ``explain(seconds_without_workers) -> str``: the error message (what Slurm says about
+        the jobs, and the fixes).
+    clock : callable
+        Monotonic seconds (tests pass a fake clock).
+    """
+
+    def __init__(self, client, timeout: float, explain: Callable[[float], str], *,
+                 clock: Callable[[], float] = time.monotonic):
+        self.client, self.timeout, self.explain, self.clock = client, float(timeout), explain, clock
+        self._since: float | None = clock()
+
+    @property
+    def poll_seconds(self) -> float:
+        """How long the driver waits for a task to finish before calling :meth:`check`."""
+        return min(10.0, max(0.5, self.timeout / 5))
+
+    def check(self) -> None:
+        """Raise :class:`ClusterError` once no worker has been connected for ``timeout`` s."""
+        now = self.clock()
+        if _n_workers(self.client) > 0:
+            self._since = None
+            return
+        if self._since is None:
+            self._since = now
+        elif now - self._since >= self.timeout:
+            raise ClusterError(self.explain(now - self._since))
+
+
+def _n_workers(client) -> int:
+    return len(client.scheduler_info().get("workers", {}))
+
+
+#: the watchdog of each client that :func:`open_client` or :func:`allocation_client` made
+_WATCHDOGS: "weakref.WeakKeyDictionary[Any, WorkerWatchdog]" = weakref.WeakKeyDictionary()
+
+
+def watchdog_for(client) -> WorkerWatchdog | None:
+    """The :class:`WorkerWatchdog` of a client from :func:`open_client` or
+    :func:`allocation_client` (None for a local cluster or a client made elsewhere)."""
+    try:
+        return _WATCHDOGS.get(client)
+    except TypeError:  # an object that cannot be weakly referenced: no watchdog
+        return None
+
+
+def _slurm_watchdog(client, settings: ClusterSettings) -> WorkerWatchdog:
+    logs = Path(settings.shared_directory) / "logs"
+
+    def explain(seconds: float) -> str:
+        return (
+            f"no Dask worker for {seconds:.0f} s while tasks wait (worker_timeout = "
+            f"{settings.worker_timeout:g} s, {settings.source_of('worker_timeout')}; "
+            f"{_job_states(client.cluster)}). Samples already computed are kept in the store; "
+            f"the same command resumes. Check why the jobs do not start (squeue --me shows the "
+            f"reason) and their logs in {str(logs)!r}; fix the partition/account in the config "
+            f"or the site defaults file, run from a login node that can submit jobs, raise "
+            f"worker_timeout (--worker-timeout) if the queue is only slow, or pass "
+            f"--cluster local"
+        )
+    return WorkerWatchdog(client, settings.worker_timeout, explain)
+
+
 def _n_tasks(cfg) -> int:
     """Upper bound of the number of tasks (blocks of realisations) of a fresh run."""
 
@@ -846,6 +958,7 @@ def open_client(cfg, overrides: Mapping[str, Any] | None = None, *, workers: int
             if fewest > 0:
                 _wait_for_workers(client, settings, 1)
             in_flight = _TASKS_PER_WORKER * most * settings.cores
+            _WATCHDOGS[client] = _slurm_watchdog(client, settings)
         yield ClientSession(client, in_flight)
     finally:
         close()
@@ -896,7 +1009,7 @@ def _bash_array(words: list[str]) -> str:
 
 def render_batch_script(cfg_path: str | Path, settings: ClusterSettings, *,
                         store_path: str | Path | None = None, job_name: str | None = None,
-                        template: str | Path | None = None) -> str:
+                        template: str | Path | None = None, retry_failed: bool = False) -> str:
     """The batch-mode job script for a sweep, with every value quoted for the shell.
 
     Inside one allocation of ``cores x jobs`` single-core tasks (``jobs`` unset: one job's
@@ -918,6 +1031,9 @@ def render_batch_script(cfg_path: str | Path, settings: ClusterSettings, *,
     template : path, optional
         A site-specific template with the same placeholders (default
         :func:`batch_template_path`).
+    retry_failed : bool
+        Every run of the script computes the store's failed samples again (``helisweep run
+        --retry-failed``); their failure records stay in the store's history.
 
     Returns
     -------
@@ -944,6 +1060,7 @@ def render_batch_script(cfg_path: str | Path, settings: ClusterSettings, *,
     store_abs = os.path.join(workdir, os.fspath(store))
     _warn_if_node_local(store_abs, "the store")
     _warn_if_node_local(settings.shared_directory, "shared_directory")
+    _warn_if_exposed(settings)
     n_workers = settings.cores * (settings.jobs or 1)
     mem_per_cpu_mib = math.ceil(settings.worker_memory_bytes / 2**20)
     shared = settings.shared_directory
@@ -969,8 +1086,10 @@ def render_batch_script(cfg_path: str | Path, settings: ClusterSettings, *,
         "PYTHON": shlex.quote(settings.python),
         "WORKER_MEMORY": str(settings.worker_memory_bytes),
         "INTERFACE_ARGS": _bash_array(["--interface", settings.interface] if settings.interface else []),
-        "STORE_ARGS": _bash_array(["--store", store_abs] if store_path is not None else []),
+        "DRIVER_ARGS": _bash_array((["--store", store_abs] if store_path is not None else [])
+                                   + (["--retry-failed"] if retry_failed else [])),
         "WORKER_TIMEOUT": f"{settings.worker_timeout:g}",
+        "DASHBOARD": shlex.quote(settings.dashboard_address),
     }
     return _fill_template(text, values, str(template_path))
 
@@ -1108,9 +1227,15 @@ def allocation_client(scheduler_file: str | Path, *, expected_workers: int = 1,
                 f"no Dask worker joined the scheduler of {str(scheduler_file)!r} within "
                 f"{timeout:g} s; see the worker messages in this job's log"
             ) from None
-        n = len(client.scheduler_info().get("workers", {}))
+        n = _n_workers(client)
         print(f"helisweep: {n} of {expected_workers} worker(s) connected; running the sweep",
               file=sys.stderr, flush=True)
+
+        def explain(seconds: float) -> str:
+            return (f"every Dask worker of this job has been gone for {seconds:.0f} s (--timeout "
+                    f"{timeout:g}) while tasks wait; see the worker messages in this job's log. "
+                    f"Samples already computed are kept; submitting the job script again resumes")
+        _WATCHDOGS[client] = WorkerWatchdog(client, timeout, explain)
         yield ClientSession(client, _TASKS_PER_WORKER * max(expected_workers, n, 1))
     finally:
         client.shutdown()

@@ -360,6 +360,10 @@ class ClusterSection(_Strict):
     interface: str | None = None
     #: shared directory for logs, scheduler file and job scripts (visible to all nodes)
     shared_directory: str | None = None
+    #: seconds without any worker (while tasks wait) before the run stops with an error
+    worker_timeout: float | None = Field(default=None, gt=0)
+    #: where the Dask dashboard listens, "host:port"; default "127.0.0.1:0" (this node only)
+    dashboard_address: str | None = None
     #: site defaults file (TOML with a [cluster] table); default ~/.config/helisweep/site.toml
     site_defaults: str | None = None
 

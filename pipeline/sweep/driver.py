@@ -19,7 +19,7 @@ import math
 import sys
 import time
 import warnings
-from collections.abc import Mapping
+from collections.abc import Iterator, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -28,7 +28,7 @@ import numpy as np
 
 from pipeline.errors import ConfigWarning, StoreError
 from pipeline.sweep.checks import check_resources, validate_run
-from pipeline.sweep.clusters import allocation_client, open_client, resolve_cluster_settings
+from pipeline.sweep.clusters import allocation_client, open_client, resolve_cluster_settings, watchdog_for
 from pipeline.sweep.config import SweepConfig, config_hash, load_config
 from pipeline.sweep.store import SampleStore
 from pipeline.sweep.tasks import run_block
@@ -238,8 +238,6 @@ class SweepSession:
         int
             Tasks run.
         """
-        from dask.distributed import as_completed  # heavy: only where a cluster is used
-
         cfg, client, store = self.cfg, self.client, self.store
         if requested is not None:
             requested = np.asarray(requested, dtype=np.int64)
@@ -266,23 +264,23 @@ class SweepSession:
             return 0
         bar = _Progress(sum(samples), enabled=self.progress)
         window = self.max_in_flight or 4 * self.n_workers
-        cfg_future = client.scatter(cfg, broadcast=True)
-        futures, ac = {}, as_completed()
+        # the config (a few kB) travels with each task: a scatter would need a worker present,
+        # and with adaptive scaling from zero jobs no worker exists before tasks are queued
+        futures = {}
         work = list(zip(queue, samples))
 
         def submit_next():
             (key, reals), count = work.pop(0)
-            args = (cfg_future, key, reals)
+            args = (cfg, key, reals)
             if requested is not None:
                 args += (requested[key[1], key[2]],)
             fut = client.submit(run_block, *args, retries=2, pure=False,
                                 key=f"helisweep-{key[0]}-{key[1]}-{key[2]}-{time.monotonic_ns()}")
             futures[fut] = (key, reals, count)
-            ac.add(fut)
 
         while work and len(futures) < window:
             submit_next()
-        for fut in ac:
+        for fut in _finished(futures, watchdog_for(client)):
             key, reals, count = futures.pop(fut)
             results = fut.result()
             _write(store, key, reals, results)
@@ -358,6 +356,26 @@ def _drive(cfg, client, path, names, *, fresh, progress, max_in_flight, max_task
         store.release_lock()  # also when the session ends in an error
 
 
+def _finished(futures: dict, watchdog) -> Iterator:
+    """The futures of ``futures`` as they finish (the caller pops each and may add more).
+
+    While no task finishes, ``watchdog.check()`` (a
+    :class:`pipeline.sweep.clusters.WorkerWatchdog`) runs every ``watchdog.poll_seconds`` and
+    stops the run when the cluster has had no worker for too long.
+    """
+    from dask.distributed import wait  # heavy: only where a cluster is used
+
+    poll = watchdog.poll_seconds if watchdog is not None else None
+    while futures:
+        try:
+            done, _ = wait(list(futures), timeout=poll, return_when="FIRST_COMPLETED")
+        except TimeoutError:
+            watchdog.check()
+            continue
+        for fut in [f for f in futures if f in done]:  # submission order
+            yield fut
+
+
 def _write(store: SampleStore, key, reals, results) -> None:
     """Write one finished block; a failing file system stops the run, keeping the rest."""
     try:
@@ -403,14 +421,16 @@ def run_in_allocation(config_path: str | Path, *, scheduler_file: str | Path,
                       store_path: str | Path | None = None, expected_workers: int = 1,
                       timeout: float = 600.0, fresh: bool = False,
                       progress: bool = False,
-                      credentials: str | Path | None = None) -> SampleStore:
+                      credentials: str | Path | None = None,
+                      retry_failed: bool = False) -> SampleStore:
     """Run (or resume) a sweep on the Dask cluster of a batch job, then shut it down (see
     :func:`pipeline.sweep.clusters.allocation_client`)."""
     cfg = load_config(config_path)
     with allocation_client(scheduler_file, expected_workers=expected_workers,
                            timeout=timeout, credentials=credentials) as session:
         store = run_sweep(cfg, client=session.client, store_path=store_path, fresh=fresh,
-                          progress=progress, max_in_flight=session.max_in_flight)
+                          progress=progress, max_in_flight=session.max_in_flight,
+                          retry_failed=retry_failed)
         c = store.counts()
         print(f"helisweep: {store.path}: {c['done']} done, {c['failed']} failed, "
               f"{c['missing']} missing of {c['total']} samples", file=sys.stderr, flush=True)
