@@ -4,63 +4,28 @@
 over modes and spin (Kwant's ``transmission(to, from)``); the diagonal holds the total
 reflection probability. Together with the number of open modes per lead it is all the
 Landauer-Buttiker solver (:mod:`pipeline.transport.landauer`) needs.
+
+The solve itself is :class:`pipeline.transport.scattering.ScatteringProblem` (Kwant's linear
+system assembled once per system, MUMPS' analysis reused, sparse right-hand sides); this
+module keeps the functions the rest of the package calls and the solver settings.
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass
-
 import numpy as np
 
-from pipeline.errors import TransportError
 from pipeline.system.mesh import DeviceSystem
+from pipeline.transport.scattering import (
+    DETERMINISTIC_ORDERINGS,
+    MUMPS_ORDERING,
+    SOLVER,
+    SOLVER_NAME,
+    Transmissions,
+    problem_for,
+)
 
-__all__ = ['Transmissions', 'transmission_matrix', 'block_transmission_matrix', 'open_modes', 'MUMPS_ORDERING', 'SOLVER']
-
-#: Fill-reducing orderings for MUMPS, in order of preference. Kwant picks SCOTCH when it is
-#: available, and SCOTCH orderings differ from run to run, so the same solve differed in the
-#: 13th digit between runs and workers. MUMPS silently replaces an ordering it was not built
-#: with (Debian's build has no METIS) by its own choice, often SCOTCH. AMF is deterministic
-#: and was also about 2x faster than SCOTCH on 200x80-site BHZ strips and H-bars here
-#: (benchmarks/bench_pipeline.py); AMD, QAMD and PORD are deterministic fall-backs.
-DETERMINISTIC_ORDERINGS = ("amf", "amd", "qamd", "pord")
-MUMPS_ORDERING = DETERMINISTIC_ORDERINGS[0]
-
-
-def _make_solver():
-    """Our own solver instance (MUMPS with a deterministic ordering, else SciPy's)."""
-    global MUMPS_ORDERING
-    try:
-        import kwant.linalg.mumps as linalg_mumps  # heavy, and optional: Kwant built without MUMPS lacks it
-        import kwant.solvers.mumps as mumps  # heavy, and optional (as above)
-    except ImportError:  # Kwant without MUMPS: SciPy's solver is deterministic already
-        import kwant.solvers.sparse as sparse  # heavy: only when MUMPS is absent
-
-        return sparse.Solver(), "scipy"
-    available = linalg_mumps.possible_orderings()
-    usable = [o for o in DETERMINISTIC_ORDERINGS if o in available]
-    if not usable:
-        raise RuntimeError(
-            f"this MUMPS build offers no deterministic ordering (has {available!r}); results "
-            f"would differ between runs. Rebuild Kwant against a MUMPS with AMD/AMF"
-        )
-    MUMPS_ORDERING = usable[0]
-    solver = mumps.Solver()
-    solver.options(ordering=MUMPS_ORDERING)
-    return solver, "mumps"
-
-
-SOLVER, SOLVER_NAME = _make_solver()
-
-
-@dataclass(frozen=True)
-class Transmissions:
-    """Result of one scattering solve."""
-
-    #: T[i, j]: transmission from contact j to contact i (diagonal: reflection)
-    matrix: np.ndarray
-    #: number of open (propagating) modes in each lead
-    modes: np.ndarray
+__all__ = ['Transmissions', 'transmission_matrix', 'block_transmission_matrix', 'open_modes',
+           'DETERMINISTIC_ORDERINGS', 'MUMPS_ORDERING', 'SOLVER', 'SOLVER_NAME']
 
 
 def open_modes(dsys: DeviceSystem, energy: float, params: dict, fsyst=None) -> np.ndarray:
@@ -72,36 +37,38 @@ def open_modes(dsys: DeviceSystem, energy: float, params: dict, fsyst=None) -> n
 
 
 def transmission_matrix(
-    dsys: DeviceSystem, energy: float, params: dict, *, fsyst=None
+    dsys: DeviceSystem, energy: float, params: dict, *, fsyst=None, inject: str = "all_but_one"
 ) -> Transmissions:
     """Full transmission matrix between all contacts at Fermi energy ``energy`` (meV).
 
-    ``fsyst`` may be a version of ``dsys.fsyst`` with precalculated lead modes
-    (``fsyst.precalculate``). Raises :class:`TransportError` when a lead has no open mode
-    (no current can enter there), with the energy and the fix.
+    Parameters
+    ----------
+    dsys : DeviceSystem
+    energy : float
+        Fermi energy (meV).
+    params : dict
+        From :meth:`DeviceSystem.params` (or one entry of ``block_params``).
+    fsyst : kwant.system.FiniteSystem, optional
+        ``dsys.fsyst`` with precalculated lead modes at ``energy`` (``fsyst.precalculate``).
+    inject : {"all_but_one", "all"}
+        See :meth:`pipeline.transport.scattering.ScatteringProblem.transmissions`.
+
+    Returns
+    -------
+    Transmissions
+
+    Raises
+    ------
+    TransportError
+        A lead has no open mode (no current can enter there), with the energy and the fix;
+        or the solve failed.
+
+    Examples
+    --------
+    >>> transmission_matrix(dsys, 0.0, dsys.params()).matrix[1, 0]  # doctest: +SKIP
+    2.0000000000000004
     """
-    fsyst = dsys.fsyst if fsyst is None else fsyst
-    try:
-        smat = SOLVER.smatrix(fsyst, energy, params=params)
-    except Exception as exc:  # re-raised with the context a user needs
-        raise TransportError(
-            f"Kwant's scattering solve failed at E = {energy!r} meV on device "
-            f"{dsys.device.name!r}: {exc}"
-        ) from exc
-    n = len(fsyst.leads)
-    modes = np.array([smat.num_propagating(i) for i in range(n)])
-    closed = [dsys.contact_names[i] for i in range(n) if modes[i] == 0]
-    if closed:
-        raise TransportError(
-            f"lead(s) {closed!r} have no open mode at E = {energy!r} meV: no current can enter "
-            f"there. Use metallic contacts (contact_doping of tens of meV) or choose an energy "
-            f"where the lead bands are occupied"
-        )
-    T = np.empty((n, n))
-    for i in range(n):
-        for j in range(n):
-            T[i, j] = smat.transmission(i, j)
-    return Transmissions(T, modes)
+    return problem_for(dsys).transmissions(energy, params, fsyst=fsyst, inject=inject)
 
 
 def block_transmission_matrix(
