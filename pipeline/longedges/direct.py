@@ -1,4 +1,4 @@
-"""Direct Kwant solves of long strips: the references a composed edge is validated against.
+"""Direct solves of long strips (Kwant's linear system, :mod:`pipeline.transport.scattering`): the references a composed edge is validated against.
 
 :func:`joined_smatrix` solves the strip made of given pool segments joined in order (exactly
 their disorder), which the composed S-matrix must reproduce up to the evanescent coupling
@@ -21,13 +21,12 @@ from pipeline.longedges.modes import StripScatterer
 from pipeline.longedges.pools import SegmentSet, buffer_mask, masked_disorder
 from pipeline.longedges.smatrix import SMatrix
 from pipeline.system.mesh import mesh_device
-from pipeline.transport.solver import SOLVER
 
 __all__ = ["joined_smatrix", "direct_conductance"]
 
 
 def joined_smatrix(segment_set: SegmentSet, indices: Sequence[int]) -> SMatrix:
-    """Direct Kwant solve of the strip made of the given segments joined in order.
+    """Direct solve of the strip made of the given segments joined in order.
 
     The joined strip carries exactly the disorder of those segments (buffers included), so
     it is the reference the composed S-matrix must reproduce up to the evanescent coupling
@@ -148,10 +147,10 @@ def _direct_ensemble(strip: StripScatterer, s: SegmentSet, clean: np.ndarray,
                                      strength=s.strength, clean=clean)
         params = strip.dsys.params(b_perp=s.b_perp, potential=pot, onsite_extra=extra)
         try:
-            sm = SOLVER.smatrix(strip.fsyst, s.energy, params=params)
+            sm = strip.problem.smatrix(s.energy, params, fsyst=strip.fsyst)
         except Exception as exc:  # re-raised with the context a user needs
             raise TransportError(
-                f"Kwant's scattering solve of the {strip.n_columns * s.lattice_constant:g} nm "
+                f"the scattering solve of the {strip.n_columns * s.lattice_constant:g} nm "
                 f"direct strip failed at E = {s.energy!r} meV, realisation "
                 f"{first_realisation + r}: {exc}"
             ) from exc

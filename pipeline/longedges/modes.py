@@ -45,7 +45,7 @@ from pipeline.longedges.smatrix import SMatrix, read_only
 from pipeline.physics.bhz import edge_decay_constants
 from pipeline.physics.materials import BHZParameters
 from pipeline.system.mesh import build_system
-from pipeline.transport.solver import SOLVER
+from pipeline.transport.scattering import ScatteringProblem
 
 __all__ = ["EVANESCENT_TOLERANCE", "EDGE_WIDTH_FACTOR", "ModeBasis", "StripScatterer",
            "evanescent_length", "transfer_eigenvalues", "decay_length", "lead_params",
@@ -333,7 +333,6 @@ class StripScatterer:
 
     def __init__(self, material, a, rows, n_columns, energy, b_perp, *, doping=None,
                  basis: ModeBasis | None = None, calibrate: bool = True):
-        self.solver = SOLVER
         self.a, self.rows, self.n_columns = a, rows, n_columns
         self.energy, self.b_perp = float(energy), float(b_perp)
         doping = dict(doping or {})
@@ -343,6 +342,8 @@ class StripScatterer:
                                  with_field=b_perp != 0.0)
         params = lead_params(self.dsys, b_perp)
         self.fsyst = self.dsys.fsyst.precalculate(self.energy, params=params)
+        # one assembled problem for every solve of this strip (MUMPS' analysis reused)
+        self.problem = ScatteringProblem(self.dsys)
         sets = self._lead_mode_sets(params)
         self.n_modes = (sets[0]["m"], sets[1]["m"])
         self.basis = basis if basis is not None else self._canonical_basis(sets[1])
@@ -414,12 +415,17 @@ class StripScatterer:
         self.calibration_error = err
 
     def solve(self, params: dict) -> SMatrix:
-        """Kwant solve with the given params, blocks in the canonical basis."""
+        """Scattering solve with the given params, blocks in the canonical basis.
+
+        The solve is :meth:`pipeline.transport.scattering.ScatteringProblem.smatrix` on this
+        strip's precalculated leads: Kwant's linear system and lead modes, so its blocks are
+        in Kwant's lead-mode basis, which the maps of this instance rewrite.
+        """
         try:
-            sm = self.solver.smatrix(self.fsyst, self.energy, params=params)
+            sm = self.problem.smatrix(self.energy, params, fsyst=self.fsyst)
         except Exception as exc:  # re-raised with the context a user needs
             raise TransportError(
-                f"Kwant's scattering solve of a {self.n_columns * self.a:g} nm x "
+                f"the scattering solve of a {self.n_columns * self.a:g} nm x "
                 f"{self.rows * self.a:g} nm strip failed at E = {self.energy!r} meV: {exc}"
             ) from exc
         self.last_kwant_unitarity = float(np.linalg.norm(

@@ -5,9 +5,11 @@ A *block* (one Dask task) is a few realisations at one geometry and disorder str
 worker process keeps what is expensive to make and independent of the realisation: the
 finalized Kwant system of each geometry (built once per worker) and the lead modes per
 (geometry, energy, field) via Kwant's ``precalculate`` (the leads are clean and ungated, so a
-gate sweep needs them once per energy). A sample's disorder depends only on the root seed,
-the realisation index and the lattice site (:mod:`pipeline.physics.disorder`), so it is the
-same fixed sample across energy, gate and field, whatever the batching or worker count.
+gate sweep needs them once per energy); the solver keeps each system's assembled scattering
+problem and its MUMPS analysis (:mod:`pipeline.transport.scattering`). A sample's disorder
+depends only on the root seed, the realisation index and the lattice site
+(:mod:`pipeline.physics.disorder`), so it is the same fixed sample across energy, gate and
+field, whatever the batching or worker count.
 """
 
 from __future__ import annotations
