@@ -9,6 +9,7 @@ batch script's logic for real without Slurm, with a stand-in ``srun``.
 
 import argparse
 import dataclasses
+import json
 import os
 import shlex
 import shutil
@@ -813,3 +814,38 @@ def test_batch_script_with_retry_failed_recomputes_failed_samples(tmp_path, tiny
     assert p.parse_args(["slurm-script", "c.toml", "--retry-failed"]).retry_failed
     assert p.parse_args(["run-in-allocation", "c.toml", "--scheduler-file", "f",
                          "--retry-failed"]).retry_failed
+
+
+# ------------------------------------------------- worker environment (issue 15, item 5)
+def test_local_workers_start_without_dasks_fixed_malloc_trim_threshold():
+    client, close = make_client(_slurm(kind="local"), n_workers_hint=1)
+    try:
+        env = client.run(lambda: {k: os.environ.get(k) for k in
+                                  ("MALLOC_TRIM_THRESHOLD_", "OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS")})
+        (worker_env,) = env.values()
+        assert worker_env == {"MALLOC_TRIM_THRESHOLD_": None, "OPENBLAS_NUM_THREADS": "1",
+                              "OMP_NUM_THREADS": "1"}
+    finally:
+        close()
+
+
+def test_job_scripts_give_workers_the_same_environment(tmp_path, tiny_config_text, monkeypatch):
+    # both kinds of job script export the configuration variable that the workers' nannies
+    # read; bash evaluates the lines and Dask, in a fresh process, reads the value
+    monkeypatch.chdir(tmp_path)
+    cfg_path = _write_config(tmp_path, tiny_config_text(realisations=1), name="e.toml")
+    lines = cl.worker_environment_exports()
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", SharedPathWarning)
+        with slurm_cluster(_slurm(shared_directory=str(tmp_path / "sh"))) as cluster:
+            job = cluster.job_script()
+    batch = _quiet_render(cfg_path, _slurm(shared_directory=str(tmp_path / "sh")))
+    for line in lines:
+        assert line in job and line in batch
+    probe = ("import dask, distributed, json; "
+             "print(json.dumps(dask.config.get('distributed.nanny.pre-spawn-environ')))")
+    env = {k: v for k, v in os.environ.items() if not k.startswith("DASK_")}
+    out = subprocess.run(["bash", "-c", "\n".join(lines) + f'\n"{sys.executable}" -c "{probe}"'],
+                         capture_output=True, text=True, timeout=120, check=True, env=env)
+    assert json.loads(out.stdout) == dict(cl.WORKER_PRE_SPAWN_ENVIRON)
+    assert json.loads(out.stdout)["MALLOC_TRIM_THRESHOLD_"] is None  # None: not set at all

@@ -51,7 +51,7 @@ from pipeline.errors import ClusterError, ConfigError, ConfigWarning, SharedPath
 from pipeline.sweep.config import load_config
 from pipeline.sweep.store import block_size
 
-__all__ = ['local_client', 'ClientSession', 'WorkerWatchdog', 'watchdog_for', 'dashboard_is_exposed', 'open_client', 'allocation_client', 'HOME_SITE_FILE', 'SETTING_NAMES', 'ClusterError', 'ClusterSettings', 'DEFAULTS', 'SITE_CONFIG_ENV', 'SharedPathWarning', 'batch_template_path', 'make_client', 'render_batch_script', 'resolve_cluster_settings', 'site_defaults_path', 'slurm_cluster', 'slurm_cluster_options', 'submit_batch_script']
+__all__ = ['local_client', 'WORKER_PRE_SPAWN_ENVIRON', 'worker_environment_exports', 'ClientSession', 'WorkerWatchdog', 'watchdog_for', 'dashboard_is_exposed', 'open_client', 'allocation_client', 'HOME_SITE_FILE', 'SETTING_NAMES', 'ClusterError', 'ClusterSettings', 'DEFAULTS', 'SITE_CONFIG_ENV', 'SharedPathWarning', 'batch_template_path', 'make_client', 'render_batch_script', 'resolve_cluster_settings', 'site_defaults_path', 'slurm_cluster', 'slurm_cluster_options', 'submit_batch_script']
 
 
 # --------------------------------------------------------------------------- driver
@@ -64,11 +64,15 @@ def local_client(workers: int = 0, *, dashboard_address: str = "127.0.0.1:0"):
     """
     from dask.distributed import Client, LocalCluster  # heavy: only where a cluster is used
 
-    for var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
+    for var in _THREAD_VARS:
         os.environ[var] = "1"
     n = workers or os.cpu_count() or 1
-    cluster = LocalCluster(n_workers=n, threads_per_worker=1, processes=True,
-                           dashboard_address=dashboard_address, silence_logs=40)
+    import dask  # heavy: only where a cluster is used
+
+    # the nannies read their pre-spawn environment when they are made (restarts reuse it)
+    with dask.config.set({"distributed.nanny.pre-spawn-environ": dict(WORKER_PRE_SPAWN_ENVIRON)}):
+        cluster = LocalCluster(n_workers=n, threads_per_worker=1, processes=True,
+                               dashboard_address=dashboard_address, silence_logs=40)
     return Client(cluster)
 
 
@@ -80,6 +84,26 @@ HOME_SITE_FILE = "~/.config/helisweep/site.toml"
 
 #: BLAS/OpenMP thread limits for single-threaded workers (one worker process per core)
 _THREAD_VARS = ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS")
+
+#: What a worker's nanny puts into the environment before it starts the worker process
+#: (Dask's ``distributed.nanny.pre-spawn-environ``; a value None removes the variable). Dask's
+#: default also sets ``MALLOC_TRIM_THRESHOLD_=65536``. Setting it at all turns off glibc's
+#: adaptive malloc thresholds: every array above 128 kB is then mapped fresh from the kernel
+#: and handed back when freed, and a sample inside a worker cost about a quarter more than
+#: the same sample in-process (benchmarks/bench_pipeline.py, docs/benchmarks.md). Every worker
+#: helisweep starts -- local, Slurm worker jobs, batch mode -- gets this environment.
+WORKER_PRE_SPAWN_ENVIRON: Mapping[str, int | None] = MappingProxyType(
+    {"MALLOC_TRIM_THRESHOLD_": None, **{v: 1 for v in _THREAD_VARS}})
+
+
+def worker_environment_exports() -> list[str]:
+    """Shell lines that give the workers of a job script helisweep's worker environment: the
+    thread limits in the job, and the nannies' pre-spawn environment through Dask's
+    configuration variable (which replaces Dask's default)."""
+    env = "{" + ", ".join(f"'{k}': {v}" for k, v in WORKER_PRE_SPAWN_ENVIRON.items()) + "}"
+    return [f"export {var}=1" for var in _THREAD_VARS] + [
+        f'export DASK_DISTRIBUTED__NANNY__PRE_SPAWN_ENVIRON="{env}"']
+
 
 #: directories that are local to each node: a store or scheduler file there is not shared
 _NODE_LOCAL = ("/tmp", "/var/tmp", "/dev/shm")
@@ -586,7 +610,7 @@ def slurm_cluster_options(settings: ClusterSettings, *, job_name: str = "heliswe
         shebang="#!/usr/bin/env bash",
         job_extra_directives=directives,
         job_directives_skip=["#SBATCH -p ", "#SBATCH -A ", "#SBATCH -e ", "#SBATCH -o "],
-        job_script_prologue=[f"export {var}=1" for var in _THREAD_VARS],
+        job_script_prologue=worker_environment_exports(),
         worker_extra_args=_lifetime_args(settings.walltime_seconds),
         death_timeout=60,
         log_directory=None,
@@ -1090,6 +1114,7 @@ def render_batch_script(cfg_path: str | Path, settings: ClusterSettings, *,
                                    + (["--retry-failed"] if retry_failed else [])),
         "WORKER_TIMEOUT": f"{settings.worker_timeout:g}",
         "DASHBOARD": shlex.quote(settings.dashboard_address),
+        "WORKER_ENVIRONMENT": "\n".join(worker_environment_exports()),
     }
     return _fill_template(text, values, str(template_path))
 
