@@ -11,7 +11,7 @@ per component::
                      the GDSII layer map is a config key, so "config" covers it)
     material         SHA-256 of the BHZ numbers actually used (preset resolved, overrides applied)
     random_scheme    RANDOM_SCHEME_VERSION of pipeline.physics.disorder
-    store_layout     the store's format string
+    store_layout     the store's format string (its version: :mod:`pipeline.sweep.storeformat`)
 
 A store records its identity when created. A resume with any component different is refused
 before compute, naming the component, what it was and what it is now, and the fix; ``--fresh``
@@ -29,12 +29,14 @@ from pathlib import Path
 from pipeline.errors import ConfigError
 from pipeline.physics.disorder import RANDOM_SCHEME_VERSION
 from pipeline.sweep.config import SweepConfig, config_hash
+from pipeline.sweep.storeformat import STORE_FORMAT
 
 __all__ = ['STORE_LAYOUT', 'IDENTITY_COMPONENTS', 'run_identity', 'identity_changes',
            'describe_changes', 'sha256_file']
 
-#: format of the sample store's layout (also the store's ``format`` attribute)
-STORE_LAYOUT = "helisweep-samples/1"
+#: format of the sample store's layout (also the store's ``format`` attribute); its version and
+#: what changes it are in :mod:`pipeline.sweep.storeformat`
+STORE_LAYOUT = STORE_FORMAT
 
 #: the components, in the order they are reported
 IDENTITY_COMPONENTS = ("config", "geometry", "material", "random_scheme", "store_layout")

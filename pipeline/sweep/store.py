@@ -17,6 +17,11 @@ Layout (``xarray.open_zarr(path)`` reads it; dims and units in attrs)::
 The dimensions ``lead_to``, ``lead_from`` and ``lead`` are the device's contacts (the names
 are part of store format 1).
 
+The group attribute ``format`` (``"helisweep-samples/1"``) names the layout and its version;
+each session records the helisweep that wrote it. What changes the version, which versions
+this helisweep reads and what it says about the others: :mod:`pipeline.sweep.storeformat`
+(stores of another version are refused before compute, naming the version that can use them).
+
 Words: a *sample* is one realisation at one sweep point; a *block* is the realisations solved
 together as one Dask task. Chunks hold one block (``realisation_block`` realisations, see the
 attributes; enough for about eight samples) at one geometry and disorder strength, all field,
@@ -43,10 +48,12 @@ import zarr
 from zarr.codecs import Crc32cCodec, ZstdCodec
 from zarr.errors import ZarrUserWarning
 
+from pipeline import __version__
 from pipeline.errors import StoreError
 from pipeline.sweep.config import AXES, SweepConfig, config_hash
 from pipeline.sweep.identity import STORE_LAYOUT, describe_changes, identity_changes, run_identity
 from pipeline.sweep.lock import StoreLock, check_unlocked
+from pipeline.sweep.storeformat import check_readable, format_note, parse_format, resume_problem
 from pipeline.timestamps import file_stamp, utc_now
 from pipeline.transport.landauer import parse_measurement
 
@@ -83,8 +90,14 @@ def _consolidate(path: Path) -> None:
         zarr.consolidate_metadata(str(path))
 
 
-def _resume_check(path: Path, cfg: SweepConfig, identity: dict) -> tuple[zarr.Group, list]:
-    """Open an existing store and list how its identity differs from ``identity``."""
+def _resume_check(path: Path, cfg: SweepConfig, identity: dict, *,
+                  fresh: bool = False) -> tuple[zarr.Group, list]:
+    """Open an existing store and list how its identity differs from ``identity``.
+
+    A sample store of another format version (:mod:`pipeline.sweep.storeformat`) is refused
+    with what it is and what to do; with ``fresh`` it is listed as a changed
+    ``store_layout`` instead, so that the caller moves it aside.
+    """
     try:
         group = zarr.open_group(str(path), mode="r+", use_consolidated=False)
         old = dict(group.attrs)
@@ -93,11 +106,11 @@ def _resume_check(path: Path, cfg: SweepConfig, identity: dict) -> tuple[zarr.Gr
             f"{str(path)!r} exists but is not a readable sample store ({exc}); move it "
             f"away or choose another run directory"
         ) from exc
-    if old.get("format") != _FORMAT:
-        raise StoreError(
-            f"{str(path)!r} is not a helisweep sample store (format {old.get('format')!r}); "
-            f"choose another run directory"
-        )
+    problem = resume_problem(old, path)  # raises for a store that is not a sample store
+    if problem is not None:
+        if not fresh:
+            raise StoreError(problem)
+        return group, [("store_layout", str(old.get("format")), _FORMAT)]
     recorded = dict(old.get("identity") or {})
     # a store from before identities were recorded: its config hash is all there is
     recorded.setdefault("config", str(old.get("config_hash")))
@@ -160,7 +173,7 @@ class SampleStore:
                      n_workers: int) -> "SampleStore":
         """:meth:`open_for_run` once the lock is held."""
         if path.exists():
-            group, changes = _resume_check(path, cfg, identity)
+            group, changes = _resume_check(path, cfg, identity, fresh=fresh)
             if changes:
                 if not fresh:
                     raise StoreError(_refusal(path, cfg, changes))
@@ -244,7 +257,7 @@ class SampleStore:
                 old = dict(zarr.open_group(str(path), mode="r", use_consolidated=False).attrs)
             except Exception:  # not a Zarr group
                 old = {}
-            if old.get("format") != _FORMAT or not old.get("derived"):
+            if not parse_format(old.get("format")).is_samples or not old.get("derived"):
                 raise StoreError(
                     f"{str(path)!r} exists and is not a derived sample store; it is never "
                     "replaced. Move it away or choose another run directory"
@@ -270,12 +283,43 @@ class SampleStore:
 
     @classmethod
     def open(cls, path: str | Path, mode: str = "r") -> "SampleStore":
+        """Open an existing store (``"r"``: to read; ``"r+"``: to change it).
+
+        Parameters
+        ----------
+        path : str or Path
+            The store (``<run directory>/samples.zarr``).
+        mode : str
+            ``"r"`` (default) or ``"r+"``.
+
+        Returns
+        -------
+        SampleStore
+
+        Raises
+        ------
+        StoreError
+            No store there, not a helisweep sample store, a format version this helisweep
+            does not read (newer, or older than any it knows) or, with ``"r+"``, one it does
+            not write; the message says which helisweep can use it and what to do
+            (:mod:`pipeline.sweep.storeformat`).
+        """
         path = Path(path)
         if not path.exists():
             raise StoreError(f"no sample store at {str(path)!r}; run the sweep first")
-        group = zarr.open_group(str(path), mode=mode, use_consolidated=False)
-        if group.attrs.get("format") != _FORMAT:
-            raise StoreError(f"{str(path)!r} is not a helisweep sample store")
+        try:
+            group = zarr.open_group(str(path), mode=mode, use_consolidated=False)
+        except Exception as exc:  # not a Zarr group at all
+            raise StoreError(
+                f"{str(path)!r} is not a readable sample store ({type(exc).__name__}: {exc}); "
+                f"give the path of a samples.zarr written by helisweep"
+            ) from exc
+        attrs = dict(group.attrs)
+        check_readable(attrs, path)
+        if mode != "r":
+            problem = resume_problem(attrs, path)
+            if problem is not None:
+                raise StoreError(problem)
         return cls(path, group)
 
     @classmethod
@@ -370,7 +414,8 @@ class SampleStore:
 
     def _log_session(self, provenance: dict) -> None:
         sessions = list(self.group.attrs.get("sessions", []))
-        sessions.append({"started": utc_now(), **provenance})
+        # the helisweep of each session: a store this version cannot use names the one that can
+        sessions.append({"started": utc_now(), "helisweep": __version__, **provenance})
         self.group.attrs["sessions"] = sessions
 
     # ------------------------------------------------------------------ reading
@@ -531,6 +576,9 @@ class SampleStore:
         if c["not_requested"]:
             lines[0] += (f"; {c['not_requested']} beyond the points' requested realisations "
                          f"(precision target) are not part of the run")
+        note = format_note(dict(self.group.attrs))
+        if note:
+            lines.append(note)
         for axis, name in enumerate(SWEEP_DIMS):
             if st.shape[axis] <= 1:
                 continue
