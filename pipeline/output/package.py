@@ -8,13 +8,24 @@ it, holding::
     methods.md         a generated methods paragraph (model, device, disorder, statistics)
     summary.nc         the aggregated summary (NetCDF, open with xarray)
     summary.csv        the main statistics as one flat table
-    config.toml        the exact configuration text the samples were computed with
+    config.toml        the configuration the samples were computed with, runnable inside the
+                       unzipped package (see below)
     provenance.json    versions, solver, BLAS, host, seeds, sessions, sample counts
     lstar.json         L* results (only when given)
     figures/           every figure (PDF, PNG) with the CSV it plots (and side JSON)
     geometry/          the device file (only for devices read from a file)
     data/              further data files of the run (only when given)
     MANIFEST.sha256    SHA-256 of every other file, in ``sha256sum`` format
+
+``config.toml`` is the configuration text stored with the samples, changed only where it
+would not run inside the unzipped package or would not recompute every stored sample: a
+geometry file path points at the packaged copy (``file = "geometry/<name>"``) and, when the
+store was extended beyond the realisations its text asks for, ``realisations`` is the stored
+count; each changed line keeps the original value in a comment beside it. Neither change
+alters a sample: the samples depend on the geometry file's content (the identity's geometry
+digest, :mod:`pipeline.sweep.identity`), not on its path, and realisation r is the same
+sample whatever the total. So ``helisweep run config.toml`` inside the unzipped package
+recomputes the stored samples bitwise.
 
 The package is assembled in a hidden temporary folder and renamed into place, so an
 interrupted export leaves no half-written package. Exports stay inside the run directory:
@@ -24,14 +35,17 @@ checks a folder or zip against its manifest.
 
 from __future__ import annotations
 
+import copy
 import csv
 import hashlib
 import importlib.metadata as md
 import json
 import math
 import os
+import re
 import shutil
 import tempfile
+import tomllib
 import zipfile
 from collections.abc import Iterable, Mapping, Sequence
 from pathlib import Path, PurePosixPath
@@ -53,11 +67,13 @@ from pipeline.timestamps import utc_now
 from pipeline.transport.environment import describe as describe_environment
 from pipeline.transport.solver import MUMPS_ORDERING, SOLVER_NAME
 
-__all__ = ['make_package', 'verify_package', 'MANIFEST_NAME']
+__all__ = ['make_package', 'verify_package', 'packaged_config', 'MANIFEST_NAME', 'GEOMETRY_DIR']
 
 #: Name of the checksum file inside a package.
 MANIFEST_NAME = "MANIFEST.sha256"
 _FORMAT = "helisweep-package/1"
+#: folder of the packaged geometry file; the packaged config's ``device.file`` points into it
+GEOMETRY_DIR = "geometry"
 _SUMMARY_STATS = ("mean", "std", "sem", "median", "q16", "q84", "ci95_low", "ci95_high",
                   "typical", "n_samples")
 _OHM_STATS = ("mean_ohm", "median_ohm", "sem_ohm", "ci95_low_ohm", "ci95_high_ohm")
@@ -96,6 +112,123 @@ def _package_dir(base: Path, name: str) -> tuple[Path, Path]:
 
 def _write_json(path: Path, data: Any) -> None:
     path.write_text(json.dumps(json_safe(data), indent=2) + "\n", encoding="utf-8")
+
+
+# --------------------------------------------------------------------------- packaged config
+#: a table header line: ``[name]`` or ``[[name]]`` (an array of tables), with a comment
+_TOML_HEADER = re.compile(r"^\s*\[(?P<array>\[)?\s*(?P<name>[^\[\]]+?)\s*\]\]?\s*(#.*)?$")
+#: a one-line value this rewriter replaces: a basic or literal string, or an integer
+_TOML_VALUE = r"(?:\"(?:[^\"\\\n]|\\.)*\"|'[^'\n]*'|[+-]?[0-9][0-9_]*)"
+
+
+def _toml_set(text: str, table: str, key: str, literal: str, comment: str) -> str:
+    """``text`` with the value of ``key`` in ``[table]`` (or of ``table.key`` before the
+    first table) replaced by ``literal``, ``comment`` appended to the line (the line's own
+    comment is kept after it).
+
+    Raises
+    ------
+    ExportError
+        If the key is not written on exactly one line in one of those two forms.
+    """
+    lines = text.splitlines(keepends=True)
+    in_table = re.compile(rf"^\s*{re.escape(key)}\s*=\s*(?P<value>{_TOML_VALUE})"
+                          rf"\s*(?P<comment>#.*)?$")
+    dotted = re.compile(rf"^\s*{re.escape(table)}\s*\.\s*{re.escape(key)}\s*=\s*"
+                        rf"(?P<value>{_TOML_VALUE})\s*(?P<comment>#.*)?$")
+    current: str | None = ""  # "" before the first table, None inside an array of tables
+    hits = []
+    for i, line in enumerate(lines):
+        body = line.rstrip("\r\n")
+        header = _TOML_HEADER.match(body)
+        if header:
+            current = None if header["array"] else header["name"]
+            continue
+        pattern = in_table if current == table else dotted if current == "" else None
+        m = pattern.match(body) if pattern is not None else None
+        if m:
+            hits.append((i, body, m))
+    if len(hits) != 1:
+        raise ExportError(
+            f"the stored configuration writes '{table}.{key}' in a form the package cannot "
+            f"rewrite ({len(hits)} plain one-line occurrences found); write it as "
+            f"'{key} = ...' on its own line in the [{table}] table and run the report again"
+        )
+    i, body, m = hits[0]
+    own = m["comment"].lstrip("#").strip() if m["comment"] else ""
+    own = f" (original comment: {own})" if own else ""
+    ending = lines[i][len(body):]
+    lines[i] = f"{body[:m.start('value')]}{literal}  # {comment}{own}{ending}"
+    return "".join(lines)
+
+
+def packaged_config(text: str, *, geometry_name: str | None = None,
+                    realisations_in_store: int | None = None) -> tuple[str, list[dict]]:
+    """The configuration text of a package: runnable inside the unzipped package, and
+    recomputing every stored sample.
+
+    Only two values change, each keeping the original in a TOML comment beside it (see the
+    module docstring): ``[device] file`` points at the packaged copy
+    ``geometry/<geometry_name>``, and ``[run] realisations`` becomes the number of
+    realisations the store holds when the store was extended beyond the text's count (not
+    with a precision target, whose first block it is). Everything else stays byte for byte.
+
+    Parameters
+    ----------
+    text : str
+        The configuration text stored with the samples.
+    geometry_name : str, optional
+        File name of the packaged geometry file (for a device read from a file).
+    realisations_in_store : int, optional
+        Length of the store's realisation axis.
+
+    Returns
+    -------
+    text : str
+        The packaged configuration.
+    changes : list of dict
+        ``{"key", "original", "packaged"}`` per changed value (for provenance.json).
+
+    Raises
+    ------
+    ExportError
+        If a value that must change is written in a form the rewriter does not handle, or the
+        rewritten text does not parse to the intended values.
+    """
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise ExportError(f"the stored configuration text is not valid TOML ({exc}); it cannot "
+                          f"be packaged") from None
+    run_table = dict(data.get("run") or {})
+    device = dict(data.get("device") or {})
+    changes: list[dict] = []
+    out = text
+    expected = copy.deepcopy(data)
+    original_file = device.get("file")
+    if original_file is not None and geometry_name is not None:
+        new = f"{GEOMETRY_DIR}/{geometry_name}"
+        if new != original_file:
+            out = _toml_set(out, "device", "file", json.dumps(new),
+                            f"packaged copy; original path: {json.dumps(original_file)}")
+            expected["device"]["file"] = new
+            changes.append({"key": "device.file", "original": original_file, "packaged": new})
+    asked = run_table.get("realisations")
+    has_target = any(k in run_table for k in ("target_ci", "target_lstar_ci"))
+    if (realisations_in_store is not None and isinstance(asked, int) and not has_target
+            and "edges" not in data and realisations_in_store > asked):
+        out = _toml_set(out, "run", "realisations", str(int(realisations_in_store)),
+                        f"the store holds {realisations_in_store} realisations; original: {asked}")
+        expected["run"]["realisations"] = int(realisations_in_store)
+        changes.append({"key": "run.realisations", "original": asked,
+                        "packaged": int(realisations_in_store)})
+    if changes and tomllib.loads(out) != expected:
+        raise ExportError(
+            "the packaged configuration does not read back as intended after rewriting "
+            f"{', '.join(c['key'] for c in changes)}; write each as 'key = value' on its own "
+            "line of its table and run the report again"
+        )
+    return out, changes
 
 
 # --------------------------------------------------------------------------- file writers
@@ -171,6 +304,8 @@ def _provenance(run: RunData, facts: dict, lstar_results: Sequence) -> dict:
         "summary_attrs": json_safe({k: v for k, v in run.summary.attrs.items()
                                     if k not in ("config_text", "store_sessions")}),
         "lstar_results": len(lstar_results),
+        # what config.toml changed from the stored text so that it runs in the package
+        "packaged_config_changes": list(facts.get("config_changes", [])),
     }
 
 
@@ -189,7 +324,8 @@ _FILE_NOTES = {
                  "(NetCDF-4; the variables of a direct run's summary plus sem_pool)"),
     "edges.csv": "the main statistics of edges.nc as one flat table",
     "summary.csv": "the main statistics of summary.nc as one flat table",
-    "config.toml": "the exact configuration text the samples were computed with",
+    "config.toml": ("the configuration the samples were computed with; `helisweep run "
+                    "config.toml` in this folder recomputes them (see below)"),
     "provenance.json": ("software versions, Kwant solver, BLAS, host, seeds, run sessions and "
                         "the number of samples done, failed and missing"),
     "lstar.json": "the longest edge length that stays within tolerance of the ideal value (L*); "
@@ -290,16 +426,59 @@ def _readme_usage(first_label: str) -> list[str]:
         "or, in Python, `pipeline.output.package.verify_package(<folder or zip>)`.",
         "",
         "In `summary.csv`, `[unit]` in a header means the unit named in that row's `unit` "
-        "column. The per-realisation samples themselves (the Zarr sample store) are not part "
-        "of this package; `config.toml` and `provenance.json` say how to recompute them.",
+        "column.",
         "",
     ]
+
+
+def _readme_recompute(config_text: str, changes: Sequence[Mapping]) -> list[str]:
+    """How to recompute the samples from the package (they are not part of it)."""
+    try:
+        data = tomllib.loads(config_text)
+        run_table = data.get("run", {})
+        directory = str(run_table.get("directory", "runs/{name}")).format(
+            name=str(run_table.get("name", "")))
+    except (tomllib.TOMLDecodeError, KeyError, IndexError, ValueError):
+        data, directory = {}, ""
+    outside = not directory or Path(directory).is_absolute() or directory.startswith("~") \
+        or ".." in PurePosixPath(directory).parts
+    network = "edges" in data
+    where = "runs/<name>" if outside else directory
+    store = f"{where}/edge-samples.zarr" if network else (
+        "recomputed/samples.zarr" if outside else f"{directory}/samples.zarr")
+    command = "helisweep run config.toml" + (" --store recomputed/samples.zarr"
+                                             if outside and not network else "")
+    lines = [
+        "## Recomputing the samples",
+        "",
+        "The per-realisation samples themselves (the Zarr sample store) are not part of this "
+        f"package. With helisweep {__version__} installed, run in this folder",
+        "",
+        f"    {command}",
+        "",
+        f"to recompute them into `{store}`: the same configuration and root seed give the same "
+        "samples bitwise, on any number of workers (`provenance.json` records the versions and "
+        "the Kwant solver of the original run).",
+    ]
+    if outside and network:
+        lines.append('The `[run] directory` of `config.toml` lies outside this folder: set '
+                     '`directory = "runs/{name}"` there first.')
+    elif outside:
+        lines.append("The `[run] directory` of `config.toml` lies outside this folder, hence "
+                     "`--store`.")
+    if changes:
+        lines += ["", "`config.toml` differs from the text stored with the samples only in "
+                  + ", ".join(f"`{c['key']}`" for c in changes)
+                  + " (the original values are in comments on those lines); no sample depends "
+                  "on these changes."]
+    return lines + [""]
 
 
 def _readme(run: RunData, files: Sequence[str], facts: Mapping, name: str = "summary") -> str:
     labels = [str(m) for m in run.summary["measurement"].values]
     lines = (_readme_head(run, facts["counts"]) + _readme_files(files)
-             + _readme_units(run.summary, labels) + _readme_usage(labels[0]))
+             + _readme_units(run.summary, labels) + _readme_usage(labels[0])
+             + _readme_recompute(facts.get("config_text", ""), facts.get("config_changes", [])))
     text = "\n".join(lines)
     if name != "summary":
         text = text.replace("summary.nc", f"{name}.nc").replace("summary.csv", f"{name}.csv")
@@ -358,18 +537,38 @@ def _manifest(folder: Path) -> str:
     return "\n".join(lines) + "\n"
 
 
-def _write_data(work: Path, run: RunData, facts: Mapping, name: str = "summary") -> None:
+def _geometry_source(run: RunData) -> Path | None:
+    """The device file of a file-based device (None for a template)."""
+    if run.config.device.file is None:
+        return None
+    src = Path(run.config.base_dir) / run.config.device.file
+    if not src.is_file():
+        raise ExportError(
+            f"the device file {str(src)!r} of the run does not exist, so the package could "
+            f"not recompute its samples; restore it (or pass config= with the right base "
+            f"directory) and write the package again")
+    return src
+
+
+def _packaged_config_of(run: RunData, facts: Mapping) -> tuple[str, list[dict]]:
+    """config.toml of the package and what was changed in it (checked before assembling)."""
+    text = str(facts["attrs"].get("config_text") or run.config.source_text)
+    src = _geometry_source(run)
+    return packaged_config(text, geometry_name=src.name if src is not None else None,
+                           realisations_in_store=facts["realisations_in_store"])
+
+
+def _write_data(work: Path, run: RunData, facts: Mapping, config_text: str,
+                name: str = "summary") -> None:
     """summary.nc, summary.csv (or edges.*), config.toml and the device file of a file-based
-    device."""
+    device (in geometry/, where the packaged config points)."""
     _write_netcdf(run.summary, work / f"{name}.nc")
     _write_summary_csv(run.summary, work / f"{name}.csv")
-    (work / "config.toml").write_text(
-        str(facts["attrs"].get("config_text") or run.config.source_text), encoding="utf-8")
-    if run.config.device.file is not None:
-        src = Path(run.config.base_dir) / run.config.device.file
-        if src.is_file():
-            (work / "geometry").mkdir()
-            shutil.copyfile(src, work / "geometry" / src.name)
+    (work / "config.toml").write_text(config_text, encoding="utf-8")
+    src = _geometry_source(run)
+    if src is not None:
+        (work / GEOMETRY_DIR).mkdir()
+        shutil.copyfile(src, work / GEOMETRY_DIR / src.name)
 
 
 def _write_figures(work: Path, run: RunData, figures: Iterable | None,
@@ -487,11 +686,13 @@ def make_package(
     lstar_results = list(lstar_results.values() if isinstance(lstar_results, Mapping)
                          else lstar_results)
 
+    config_text, config_changes = _packaged_config_of(run, facts)
+    facts = {**facts, "config_text": config_text, "config_changes": config_changes}
     if summary_name not in ("summary", "edges"):
         raise ExportError(f"summary_name must be 'summary' or 'edges', got {summary_name!r}")
 
     def fill(work: Path) -> None:
-        _write_data(work, run, facts, summary_name)
+        _write_data(work, run, facts, config_text, summary_name)
         _write_figures(work, run, figures, lstar_results)
         _copy_extra(work, extra_files)
         _write_documents(work, run, facts, lstar_results, summary_name)
