@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import json
 import math
+import re
 from collections.abc import Mapping, Sequence
 from pathlib import Path
 from typing import Any
@@ -30,6 +31,20 @@ __all__ = ['methods_text', 'store_facts']
 _TEMPLATE_NAMES = {"strip": "two-terminal strip", "hbar": "four-terminal H-bar",
                    "hallbar": "six-terminal Hall bar"}
 _SOLVER_NAMES = {"mumps": "the MUMPS sparse direct solver", "scipy": "SciPy's sparse solver"}
+
+#: a parenthesised file path, as older provenance wrote after the BLAS name
+_PATH_IN_PARENS = re.compile(r"\s*\(/[^)]*\)")
+
+
+def _blas_phrase(session: Mapping) -> str:
+    """The BLAS under the solver as the session recorded it, with no machine path.
+
+    Sessions record ``blas`` (no paths); older ones only ``system_blas``, which could hold the
+    library's path in parentheses: that part is dropped.
+    """
+    text = str(session.get("blas") or session.get("system_blas") or "unknown")
+    text = _PATH_IN_PARENS.sub("", text)
+    return " ".join(w for w in text.split() if not w.startswith("/")) or "unknown"
 
 
 def _g(x: float) -> str:
@@ -266,7 +281,7 @@ def _transport_section(summary: Any, session: Mapping) -> str:
     text = (
         f"For each sample the full transmission matrix between all contacts was obtained from "
         f"the scattering matrix computed with Kwant {session.get('kwant', 'unknown')} "
-        f"({_SOLVER_NAMES.get(solver, solver)}; BLAS: {session.get('system_blas', 'unknown')}). "
+        f"({_SOLVER_NAMES.get(solver, solver)}; BLAS: {_blas_phrase(session)}). "
         f"The reported quantities ({'; '.join(_measurement_phrase(x) for x in labels)}) follow "
         f"from the multi-terminal Landauer-Buttiker formulas, with voltage probes drawing no "
         f"net current."
