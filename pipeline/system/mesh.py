@@ -31,6 +31,7 @@ from pipeline.device.outline import Device
 from pipeline.errors import GeometryError, ModelError
 from pipeline.physics.bhz import lattice_matrices, zeeman_matrix
 from pipeline.physics.materials import BHZParameters
+from pipeline.system.gauge import magnetic_gauge
 
 __all__ = ['Mesh', 'mesh_device', 'DeviceSystem', 'build_system', 'per_contact']
 
@@ -264,7 +265,8 @@ class DeviceSystem:
         key = float(b_perp)
         if key not in self._phase_cache:
             if self._gauge is None:
-                self._gauge = kwant.physics.magnetic_gauge(self.fsyst)
+                # Kwant's magnetic_gauge; contacts too close for it become a ModelError
+                self._gauge = magnetic_gauge(self.fsyst, self.device, self.mesh.lattice_constant)
             flux = key * FLUX_QUANTA_PER_T_NM2  # flux quanta per nm^2
             phases = self._gauge(flux, *([flux] * len(self.fsyst.leads)))
             out = {"peierls": phases[0]}

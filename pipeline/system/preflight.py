@@ -7,6 +7,7 @@ thinks, is the lattice fine enough, how big is a solve.
 * discretisation error: the same lattice quantities at ``a/2``;
 * finite-size coupling of the two edges (edge-state decay length versus strip width);
 * number of sites and a memory estimate per solve;
+* with ``with_field=True``: that Kwant can fix the magnetic gauge (contacts not too close);
 * a figure of the outline, contacts, gates and mesh.
 
 Everything here is a model estimate for the chosen parameters, not a statement about a
@@ -31,7 +32,8 @@ from pipeline.physics.bhz import (
     edge_velocity,
 )
 from pipeline.physics.materials import BHZParameters
-from pipeline.system.mesh import mesh_device, strip_lead
+from pipeline.system.gauge import magnetic_gauge
+from pipeline.system.mesh import build_system, mesh_device, strip_lead
 
 __all__ = ['lattice_bulk_gap', 'strip_edge_properties', 'EdgeProperties', 'PreflightReport', 'preflight', 'estimate_memory_mb']
 
@@ -181,10 +183,20 @@ def preflight(
     lattice_constant: float,
     *,
     check_half: bool = True,
+    with_field: bool = False,
 ) -> PreflightReport:
-    """Run all checks for one device, material and lattice constant (see module docstring)."""
+    """Run all checks for one device, material and lattice constant (see module docstring).
+
+    ``with_field=True`` (the run has a non-zero perpendicular field) also builds the Kwant
+    system and fixes its magnetic gauge, so contacts too close for that are refused here with
+    a :class:`ModelError` naming them and the fix, not deep inside a run.
+    """
     a = float(lattice_constant)
     mesh = mesh_device(device, a)
+    if with_field:
+        # the gauge depends on the lattice graph only: the spin-block system is enough
+        magnetic_gauge(build_system(device, material, a, with_field=True, spin_block=True).fsyst,
+                       device, a)
     gap_c, _, _ = continuum_bulk_gap(material)
     gap_l, top, bottom = lattice_bulk_gap(material, a)
     widths = [c.width for c in device.contacts] or [min(np.ptp(device.outline.bounds[0::2]),
