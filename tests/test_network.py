@@ -434,3 +434,32 @@ def test_an_edges_run_never_writes_into_a_direct_runs_directory(tmp_path):
         run_network(cfg, progress=False)
     assert (cfg.run_dir / "lstar.json").read_text() == "{}"
     assert not (cfg.run_dir / POOLS_STORE).exists()
+
+
+def test_pool_store_is_locked_and_knows_its_material_numbers_and_scheme(tmp_path, monkeypatch):
+    # (issue 14) one driver per pool store; pools of other material numbers or another
+    # random-number scheme are refused, as a sample store's identity does
+    import json
+    import time
+
+    from pipeline.errors import StoreError
+    from pipeline.network.plan import plan_network
+    from pipeline.network.run import pools_hash
+    from pipeline.physics import disorder
+    from pipeline.sweep import identity
+    from pipeline.sweep.lock import lock_path
+
+    cfg = network_config(tmp_path)
+    pools = cfg.run_dir / POOLS_STORE
+    lock_path(pools).parent.mkdir(parents=True, exist_ok=True)
+    lock_path(pools).write_text(json.dumps({
+        "host": "node-elsewhere-17", "pid": 12345, "user": "ana", "started": "earlier",
+        "heartbeat": "earlier", "heartbeat_unix": time.time(), "store": str(pools)}))
+    with pytest.raises(StoreError, match="node-elsewhere-17"):
+        run_network(cfg, progress=False)
+    assert not pools.exists()  # refused before any pool was solved
+    lock_path(pools).unlink()
+    plan = plan_network(cfg)
+    before = pools_hash(cfg, plan)
+    monkeypatch.setattr(identity, "RANDOM_SCHEME_VERSION", disorder.RANDOM_SCHEME_VERSION + 1)
+    assert pools_hash(cfg, plan) != before

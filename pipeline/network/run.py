@@ -48,6 +48,8 @@ from pipeline.network.solve import (
     network_transmissions,
 )
 from pipeline.sweep.config import SweepConfig, config_hash
+from pipeline.sweep.identity import run_identity
+from pipeline.sweep.lock import StoreLock
 from pipeline.sweep.runmodel import disorder_terms
 from pipeline.sweep.store import SampleStatus, SampleStore, SegmentPoolStore
 from pipeline.timestamps import utc_now
@@ -76,9 +78,14 @@ def _say(msg: str, progress: bool) -> None:
 
 
 def pools_hash(cfg: SweepConfig, plan: NetworkPlan) -> str:
-    """What determines the pools (not the devices sampled from them)."""
+    """What determines the pools (not the devices sampled from them): the material numbers
+    actually used and the random-number scheme's version included (as in a sample store's
+    identity, :func:`pipeline.sweep.identity.run_identity`)."""
     ec = cfg.edges
+    ident = run_identity(cfg)
     data = {
+        "material_numbers": ident["material"],
+        "random_scheme": ident["random_scheme"],
         "material": cfg.material.model_dump(mode="json"),
         "lattice": cfg.lattice.constant,
         "width": plan.pool_width,
@@ -383,6 +390,19 @@ def run_network(cfg: SweepConfig, run_dir: str | Path | None = None, *, client=N
     keys = plan.pool_keys(cfg)
     if compute:
         run_dir.mkdir(parents=True, exist_ok=True)
+    # one driver per pool store (the derived store and edges.nc are written under the same lock)
+    lock = StoreLock.acquire(run_dir / POOLS_STORE) if compute else None
+    try:
+        return _run_locked(cfg, run_dir, plan, keys, client=client, progress=progress,
+                           chunk=chunk, fresh=fresh, compute=compute, tolerance=tolerance,
+                           temperatures=temperatures)
+    finally:
+        if lock is not None:
+            lock.release()
+
+
+def _run_locked(cfg, run_dir, plan, keys, *, client, progress, chunk, fresh, compute,
+                tolerance, temperatures) -> dict:
     digest = pools_hash(cfg, plan)
     store = SegmentPoolStore.open(run_dir / POOLS_STORE, digest, fresh=fresh,
                                   config_text=cfg.source_text, create=compute, group="pools")
