@@ -1,11 +1,15 @@
-# The two commands of the README. Each prepares (or reuses) .venv first.
+# The two commands of the README. Each prepares (or reuses) .venv first (scripts/setup.sh).
 VENV ?= .venv
 PY := $(VENV)/bin/python
 
-.PHONY: setup demo test test-fast lint bench clean-venv
+.PHONY: setup setup-plan demo test test-fast test-kwant lint bench clean-venv
 
 setup:
-	@bash scripts/setup.sh
+	@VENV=$(VENV) bash scripts/setup.sh
+
+# only detect: the install route, what the set-up would do, and the other routes' commands
+setup-plan:
+	@VENV=$(VENV) bash scripts/setup.sh --plan
 
 demo: setup
 	$(PY) -m pipeline.cli demo --out demo-output
@@ -15,6 +19,10 @@ test: setup
 
 test-fast: setup
 	$(PY) -m pytest -q -m "not slow"
+
+# Kwant's own test suite on the installed Kwant (exclusions and their reasons in the script)
+test-kwant: setup
+	VENV=$(VENV) bash scripts/kwant_tests.sh
 
 # the layers contract and ruff on their own (tests/test_architecture.py runs both in `make test`)
 lint: setup
