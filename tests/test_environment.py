@@ -120,3 +120,22 @@ def test_methods_text_has_no_machine_path(tmp_path, dask_clients):
     assert "BLAS: OpenBLAS)" in old_methods
     for t in (methods, old_methods):
         assert "/usr/" not in t and str(tmp_path) not in t
+
+
+def test_a_worker_process_limits_its_blas_to_one_thread_at_its_first_system(tmp_path, monkeypatch):
+    # threadpoolctl raises the pools to 2 threads; the first system a process builds for a
+    # sweep brings them back to 1, whatever the environment variables said at start-up
+    from collections import OrderedDict
+
+    from conftest import tiny_config
+    from threadpoolctl import threadpool_info, threadpool_limits
+
+    from pipeline.sweep import tasks
+    from pipeline.sweep.config import parse_config
+
+    pytest.importorskip("kwant.linalg.mumps")  # loads the BLAS under MUMPS, as a solve does
+    monkeypatch.setattr(tasks, "_SYSTEM_CACHE", OrderedDict())
+    threadpool_limits(limits=2)
+    assert any(p["num_threads"] == 2 for p in threadpool_info())
+    tasks.system_for(parse_config(tiny_config(tmp_path / "run", 1)), 0, reduced=True)
+    assert all(p["num_threads"] == 1 for p in threadpool_info())

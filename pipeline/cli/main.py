@@ -48,6 +48,7 @@ from pipeline.sweep.lock import describe_lock, read_lock
 from pipeline.sweep.runmodel import device_for
 from pipeline.sweep.store import SampleStore
 from pipeline.system.mesh import build_system
+from pipeline.transport.environment import describe, summary_line
 from pipeline.transport.landauer import conductance_matrix, parse_measurement
 from pipeline.transport.solver import transmission_matrix
 
@@ -125,11 +126,13 @@ def _cmd_preflight(args) -> int:
     if cfg.edges is not None:
         return _preflight_network(cfg)
     out_dir = Path(args.out) if args.out else cfg.run_dir
+    print(summary_line(describe()))
     for g, value in enumerate(cfg.axes["geometry"]):
         device = device_for(cfg, g)
         suffix = f"-{value:g}nm" if cfg.sweep.geometry else ""
         out = out_dir / f"device{suffix}.png"
-        print(preview_device(device, cfg.material.parameters(), cfg.lattice.constant, out))
+        print(preview_device(device, cfg.material.parameters(), cfg.lattice.constant, out,
+                             with_field=cfg.needs_field))
         print(f"figure: {out}")
     return 0
 

@@ -15,19 +15,20 @@ __all__ = ["preview_device"]
 
 
 def preview_device(device: Device, material: BHZParameters, a: float, out: Path, *,
-                   check_half: bool = True) -> str:
+                   check_half: bool = True, with_field: bool = False) -> str:
     """Validate, preflight and draw a device; returns the preflight report text.
 
     The figure (PNG at ``out`` and a PDF beside it) shows the outline, contacts, gates and
     the lattice sites. ``check_half`` also solves at ``a/2`` to report the discretisation
-    error (slower).
+    error (slower). ``with_field`` (the run has a perpendicular field) also fixes the
+    magnetic gauge, so contacts too close for it are refused with the fix.
     """
     from matplotlib.figure import Figure  # heavy: only when a figure is drawn
 
     validate_device(device, a)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # the warnings are part of the report text
-        report = preflight(device, material, a, check_half=check_half)
+        report = preflight(device, material, a, check_half=check_half, with_field=with_field)
     mesh = mesh_device(device, a)
     fig = Figure(figsize=(7, 5), layout="constrained")
     ax = fig.add_subplot()

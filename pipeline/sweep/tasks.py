@@ -25,6 +25,7 @@ from pipeline.sweep.config import SweepConfig, config_hash
 from pipeline.sweep.runmodel import device_for, disorder_terms, gate_potentials, uses_spin_blocks
 from pipeline.sweep.store import RealisationSamples, SampleStatus
 from pipeline.system.mesh import build_system
+from pipeline.transport.environment import limit_blas_threads
 from pipeline.transport.landauer import parse_measurement
 from pipeline.transport.solver import block_transmission_matrix, transmission_matrix
 
@@ -47,6 +48,10 @@ def system_for(cfg: SweepConfig, geometry_index: int, *, reduced: bool = False):
     :func:`uses_spin_blocks` allows it, else the full four-band system.
     """
 
+    if not _SYSTEM_CACHE:
+        # this process's first system: one BLAS thread per worker process (one worker per
+        # core), applied through threadpoolctl whatever BLAS the install brought
+        limit_blas_threads(1)
     reduced = reduced and uses_spin_blocks(cfg)
     key = _system_key(cfg, geometry_index) + (reduced,)
     if key in _SYSTEM_CACHE:
