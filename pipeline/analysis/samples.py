@@ -56,6 +56,8 @@ def open_samples(source) -> tuple[xr.Dataset, str]:
             f"no sample store at {str(path)!r}; run the sweep first (helisweep run CONFIG) or "
             f"give the path of an existing samples.zarr"
         )
+    # first the store layer: a store of another format is refused with what it is and the fix
+    store = SampleStore.open(path)
     try:
         ds = xr.open_zarr(str(path), consolidated=False)
     except Exception as exc:  # not a Zarr group
@@ -63,7 +65,7 @@ def open_samples(source) -> tuple[xr.Dataset, str]:
             f"{str(path)!r} cannot be read as a sample store ({type(exc).__name__}: {exc}); "
             f"give the path of a samples.zarr written by helisweep"
         ) from exc
-    damaged = SampleStore.open(path).verify()
+    damaged = store.verify()
     if damaged:
         where = ", ".join(f"{n} task {k}" for n, k, _ in damaged[:_DAMAGED_SHOWN])
         more = ", ..." if len(damaged) > _DAMAGED_SHOWN else ""
