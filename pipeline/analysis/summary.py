@@ -97,10 +97,10 @@ _NOTE = (
     "Model estimates from simulated disorder ensembles (BHZ tight-binding model, "
     "Landauer-Buttiker); not measurements and not a certification of any real device."
 )
-#: The summary's ``source`` attribute. The text is part of the summary format (summaries are
-#: compared bitwise with those written before the package was split into stages), so it
-#: keeps the name the summariser had then, pipeline.aggregate.summarize.
-_SOURCE = ("helisweep {version} (pipeline.aggregate.summarize): BHZ tight-binding "
+#: The summary's ``source`` attribute: the version and the function that wrote the summary.
+#: (Until the scattering solve changed the numbers at roundoff, it kept the module name of the
+#: time before the package was split into stages, for bitwise comparisons with then.)
+_SOURCE = ("helisweep {version} (pipeline.analysis.summary.summarize): BHZ tight-binding "
            "model, Kwant scattering, Landauer-Buttiker")
 _PER_UNIT = "unit per measurement: see the 'unit' coordinate"
 
