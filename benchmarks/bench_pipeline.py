@@ -795,23 +795,42 @@ def _timed_checks():
         driver.validate_run = original
 
 
+def _cached_systems() -> int:
+    """(Run on a worker.) Systems the worker's task cache holds."""
+    from pipeline.sweep import tasks
+
+    return len(tasks._SYSTEM_CACHE)
+
+
 def _warm_cluster(n, cfg, workdir, log):
-    """A local cluster of n workers, each having solved one task (system, lead modes and
-    analysis cached), and one short untimed sweep run (first-call costs of the driver)."""
+    """A local cluster of n workers warmed by short untimed sweeps until every worker has
+    solved a task (system, lead modes and MUMPS analysis cached; first-call costs of the
+    driver paid); returns the client and the largest worker peak RSS (MB) before any task.
+
+    Only sweeps warm the workers: a solve through ``client.run`` would run in another thread
+    of the worker, whose solver problem (kept per thread) would hold a second set of MUMPS
+    factors that no sweep ever makes.
+    """
     from pipeline.sweep.clusters import local_client
     from pipeline.sweep.driver import run_sweep
-    from pipeline.sweep.tasks import solve_realisation
 
     t = time.perf_counter()
     client = local_client(n)
     logging.getLogger("distributed").setLevel(logging.WARNING)
     client.wait_for_workers(n)
-    client.run(solve_realisation, cfg, (0, 0, 0))
-    warm = Path(workdir) / f"sweep-w{n}-warm-up-{time.monotonic_ns()}.zarr"
-    run_sweep(cfg, client=client, store_path=warm, progress=False, max_tasks=n)
-    shutil.rmtree(warm, ignore_errors=True)
+    # a worker's own peak before any task (Dask alone): its baseline
+    idle_mb = max(s["peak_rss_mb"] for s in client.run(_worker_stats).values())
+    for _ in range(4):
+        warm = Path(workdir) / f"sweep-w{n}-warm-up-{time.monotonic_ns()}.zarr"
+        run_sweep(cfg, client=client, store_path=warm, progress=False, max_tasks=2 * n)
+        shutil.rmtree(warm, ignore_errors=True)
+        if min(client.run(_cached_systems).values()) > 0:
+            break
+    else:
+        raise RuntimeError(f"a worker of the {n}-worker cluster got no warm-up task in 4 "
+                           f"short sweeps")
     log(f"  cluster of {n} worker(s) started and warmed in {time.perf_counter() - t:.1f} s")
-    return client
+    return client, idle_mb
 
 
 def _close(client) -> None:
@@ -823,8 +842,9 @@ def _close(client) -> None:
 def measure_sweeps(case, settings, workers, realisations, repeats, workdir, log) -> dict:
     """Wall time of whole ``run_sweep`` calls on warm local clusters, worker counts alternated.
 
-    Every worker first solves one task through ``client.run`` so its system and lead modes are
-    cached (what a long sweep amortises); each timed sweep writes a fresh store.
+    Every worker first solves a task of a short untimed sweep, so its system, lead modes and
+    MUMPS analysis are cached (what a long sweep amortises); each timed sweep writes a fresh
+    store.
     """
     import psutil
 
@@ -836,11 +856,11 @@ def measure_sweeps(case, settings, workers, realisations, repeats, workdir, log)
     t = time.perf_counter()
     validate_run(cfg)
     validate_s = time.perf_counter() - t
-    clients = {}
+    clients, idle = {}, {}
     try:
         with _timed_checks() as checks:
             for n in workers:
-                clients[n] = _warm_cluster(n, cfg, workdir, log)
+                clients[n], idle[n] = _warm_cluster(n, cfg, workdir, log)
             me = psutil.Process()
             res = {n: {"wall": [], "checks": [], "driver_cpu": [], "worker_cpu": []}
                    for n in workers}
@@ -866,6 +886,7 @@ def measure_sweeps(case, settings, workers, realisations, repeats, workdir, log)
         for n in workers:
             stats = clients[n].run(_worker_stats)
             res[n]["worker_peak_rss_mb"] = max(s["peak_rss_mb"] for s in stats.values())
+            res[n]["worker_idle_rss_mb"] = idle[n]
         return {"case": case.spec, "samples": samples, "validate_s": validate_s,
                 "per_worker": res}
     finally:
@@ -915,7 +936,7 @@ def measure_worker_cost(case, settings, energy, realisations, repeats, workdir, 
              "energy": energy, "realisations": realisations, "workdir": workdir}
     seen = {"benchmark process": os.environ.get("MALLOC_TRIM_THRESHOLD_")}
     with _timed_checks() as checks:
-        client = _warm_cluster(1, cfg, workdir, log)
+        client, _ = _warm_cluster(1, cfg, workdir, log)
         try:
             seen["Dask worker"] = next(iter(client.run(_worker_stats).values()))[
                 "malloc_trim_threshold"]
@@ -1318,8 +1339,11 @@ def render(args, cases, machine, timing, memory, factor, sweep, worker, prof) ->
                          f"{_yes(pm / fm <= TARGET_MEMORY_RATIO)} |")
                 if sweep:
                     wm = max(v["worker_peak_rss_mb"] for v in sweep["per_worker"].values())
+                    idle = max(v["worker_idle_rss_mb"] for v in sweep["per_worker"].values())
                     L.append(f"| (the same, for a Dask worker process) | worker / {ref_name} "
-                             f"process = {wm:.0f} / {fm:.0f} MB = {wm / fm:.2f}× | "
+                             f"process = {wm:.0f} / {fm:.0f} MB = {wm / fm:.2f}× (an idle "
+                             f"worker, before any task, peaks at {idle:.0f} MB; the imports "
+                             f"alone at {memory['baseline']['peak_rss_mb']:.0f} MB) | "
                              f"{_yes(wm / fm <= TARGET_MEMORY_RATIO)} |")
     else:
         L.append(f"| peak memory per worker ≤ {TARGET_MEMORY_RATIO}× the bare solve's | "
@@ -1415,15 +1439,16 @@ def _render_factor(cases, factor, med, fact) -> list[str]:
 def _render_sweep(args, sweep) -> list[str]:
     L = [f"## Whole sweeps through the engine ({Case.parse(sweep['case']).label})\n"]
     L.append(f"`run_sweep` of {sweep['samples']} samples (realisations × 1 energy) into a "
-             f"fresh Zarr store, on warm `local_client(n)` clusters (every worker solved "
-             f"one task first, so its system, lead modes and MUMPS analysis are cached, and one "
-             f"short untimed sweep ran on each cluster), medians over {args.sweep_repeats} "
+             f"fresh Zarr store, on warm `local_client(n)` clusters (short untimed sweeps "
+             f"ran until every worker had solved a task, so its system, lead modes and MUMPS "
+             f"analysis are cached), medians over {args.sweep_repeats} "
              f"repeat(s), worker counts alternated. Wall time includes the driver's per-sweep "
              f"checks and the store.\n")
     L.append("| workers | median wall s | of which driver checks s | samples/s | ratio to "
              "1 worker | samples/s after the checks | ratio to 1 worker after the checks | "
-             "driver CPU s/sample | worker CPU s/sample | peak RSS per worker MB |")
-    L.append("|" + "---:|" * 10)
+             "driver CPU s/sample | worker CPU s/sample | peak RSS per worker MB | idle "
+             "worker MB |")
+    L.append("|" + "---:|" * 11)
     pw = sweep["per_worker"]
     n0 = min(pw)
     base = _median(pw[n0]["wall"])
@@ -1436,7 +1461,19 @@ def _render_sweep(args, sweep) -> list[str]:
                  f"{_f(sweep['samples'] / wc)} | {_f(base_c / wc)} | "
                  f"{_f(_median(pw[n]['driver_cpu']) / sweep['samples'])} | "
                  f"{_f(_median(pw[n]['worker_cpu']) / sweep['samples'])} | "
-                 f"{_f(pw[n]['worker_peak_rss_mb'])} |")
+                 f"{_f(pw[n]['worker_peak_rss_mb'])} | {_f(pw[n]['worker_idle_rss_mb'])} |")
+    L.append("")
+    cores = os.cpu_count() or 1
+    for n in sorted(pw):
+        if n == n0:
+            continue
+        cpu = (_median(pw[n]["worker_cpu"]) + _median(pw[n]["driver_cpu"])) / sweep["samples"]
+        bound = min(n, cores) / cpu
+        L.append(f"CPU bound with {n} workers on this {cores}-core machine: {min(n, cores)} "
+                 f"core(s) / (worker + driver CPU per sample, {_f(cpu)} s) = {_f(bound)} "
+                 f"samples/s = {_f(bound / (sweep['samples'] / base))}× the 1-worker "
+                 f"throughput: the ratio no scheduling could beat while the driver and the "
+                 f"scheduler share the cores with the workers.")
     L.append("")
     L.append("Driver checks: `validate_run`, which `run_sweep` calls before submitting any "
              "task (the workers idle meanwhile); timed inside each sweep. \"After the "
@@ -1496,7 +1533,9 @@ def _render_worker(worker) -> list[str]:
                  f"{_f(1e3 * sess / n)} | {_f(sess / n / wk['in-process'])} | — | |")
     L.append("")
     L.append(f"Effect of `MALLOC_TRIM_THRESHOLD_={DASK_MALLOC_TRIM}` in a plain process "
-             f"(no Dask): {wk['trim_ratio']:.3f}× the per-sample cost without it. Worker CPU "
+             f"(no Dask): {wk['trim_ratio']:.3f}× the per-sample cost without it. The worker "
+             f"against a fresh process without it (the same clean start as a worker): "
+             f"{wk['worker'] / wk['subprocess']:.3f}×. Worker CPU "
              f"is the worker process's own (`psutil`); in-process CPU that of the benchmark "
              f"process during the loop.\n")
     spread = "; ".join(f"{mode} {_f(1e3 * min(v['wall']) / n)}–{_f(1e3 * max(v['wall']) / n)}"
@@ -1564,7 +1603,7 @@ def parse_args(argv=None):
     p.add_argument("--memory-samples", type=int, default=None,
                    help="samples per memory probe subprocess (default 2; --smoke 1)")
     p.add_argument("--factor-repeats", type=int, default=None,
-                   help="realisations per factorisation setting (default 3; --smoke 1)")
+                   help="realisations per factorisation setting (default 7; --smoke 1)")
     p.add_argument("--blr-tolerances", type=float, nargs="+", default=list(BLR_TOLERANCES),
                    help="MUMPS block low-rank tolerances tried")
     p.add_argument("--sweep-size", type=Case.parse, default=None,
@@ -1613,7 +1652,7 @@ def parse_args(argv=None):
     if args.sizes is None:
         args.sizes = [Case.parse(s) for s in (SMOKE_SIZES if smoke else DEFAULT_SIZES)]
     for name, full, small in (("repeats", 7, 1), ("memory_samples", 2, 1),
-                              ("factor_repeats", 3, 1), ("sweep_realisations", 64, 4),
+                              ("factor_repeats", 7, 1), ("sweep_realisations", 64, 4),
                               ("sweep_repeats", 3, 1), ("worker_energies", 33, 3),
                               ("worker_realisations", 32, 2), ("worker_repeats", 3, 1),
                               ("profile_samples", 5, 2)):

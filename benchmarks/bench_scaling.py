@@ -264,18 +264,24 @@ def run(args, log) -> dict:
                     log(f"    {row['per_sample_s']:.3g} s/sample, peak "
                         f"{res['peak_rss_mb']:.0f} MB, run {res['wall_s']:.0f} s")
                 rows.append(row)
-    return {"baseline_mb": baseline, "series": results,
-            "total_s": time.perf_counter() - t_start}
+    return {"baseline_mb": baseline, "series": results, "samples": args.samples,
+            "smoke": args.smoke, "total_s": time.perf_counter() - t_start}
 
 
 def render(args, machine, data) -> str:
     base = data["baseline_mb"]
     L = ["# Benchmark: scaling of the per-sample cost and peak memory with device size\n"]
-    if args.smoke:
+    if data.get("smoke", args.smoke):
         L.append("> **SMOKE TEST: toy sizes. These numbers only show that the script runs; "
                  "they are NOT results.**\n")
-    L.append(f"Command: `{args.command}`  ")
+    L.append(f"Command: `{data.get('command', args.command)}`  ")
     L.append(f"Date: {machine['date']}; git {machine['git']}\n")
+    if data.get("rendered"):
+        r = data["rendered"]
+        L.append(f"The measurements are those of the command above. This report was rendered "
+                 f"again from its raw numbers by `{r['command']}` ({r['date']}, git "
+                 f"{r['git']}): only the preflight estimate column was recomputed, with "
+                 f"`estimate_memory_mb` as of that commit.\n")
     ls, le = machine["load_start"], machine["load_end"]
     L.append(f"Machine: {machine['nproc']} CPU(s), {machine['cpu']}, {machine['ram_gib']:.1f} "
              f"GiB RAM; Kwant {machine['kwant']} (solver `{machine['kwant_solver']}`), "
@@ -289,7 +295,7 @@ def render(args, machine, data) -> str:
              "`hbar:120x40x40x40` scaled uniformly. Each size runs in a fresh subprocess "
              "through the pipeline: `system_for` (the Kwant system), then "
              f"`solve_realisation` once untimed (lead modes, MUMPS analysis, first sample), "
-             f"then {args.samples} timed sample(s) (median shown). Peak memory: the "
+             f"then {data.get('samples', args.samples)} timed sample(s) (median shown). Peak memory: the "
              f"subprocess's `VmHWM` (after the build, and at the end); the imports alone "
              f"peak at {base:.0f} MB. The preflight estimate is "
              f"`estimate_memory_mb(n_sites, lead_width_sites, norbs)` with the orbitals per "
@@ -357,6 +363,25 @@ def render(args, machine, data) -> str:
     return "\n".join(L) + "\n"
 
 
+def rerender(args) -> dict:
+    """The raw numbers of an earlier run (``--json``) with the preflight estimate recomputed."""
+    import datetime as _dt
+    import subprocess as _sp
+
+    from pipeline.system.preflight import estimate_memory_mb
+
+    data = json.loads(Path(args.render_from).read_text())
+    for rows in data["series"].values():
+        for r in rows:
+            r["estimate_mb"] = estimate_memory_mb(r["n_sites"], r["lead_width"],
+                                                  norbs=r["norbs"])
+    git = _sp.run(["git", "rev-parse", "--short", "HEAD"], cwd=REPO, capture_output=True,
+                  text=True).stdout.strip() or "unknown"
+    data["rendered"] = {"command": args.command, "git": git,
+                        "date": _dt.datetime.now().astimezone().isoformat(timespec="seconds")}
+    return data
+
+
 def parse_args(argv=None):
     p = argparse.ArgumentParser(description="Per-sample cost and peak memory against the number "
                                             "of sites (fresh subprocess per size).")
@@ -376,8 +401,14 @@ def parse_args(argv=None):
     p.add_argument("--write", nargs="?", const=str(DEFAULT_DOC), default=None, metavar="PATH",
                    help="write the Markdown report there (replacing the file)")
     p.add_argument("--json", default=None, metavar="PATH", help="also write the raw numbers")
+    p.add_argument("--render-from", default=None, metavar="JSON",
+                   help="render the report from the raw numbers of an earlier run (--json), "
+                        "recomputing only the preflight estimate; runs nothing")
     p.add_argument("--probe", default=None, help=argparse.SUPPRESS)
     args = p.parse_args(argv)
+    if args.render_from and not Path(args.render_from).is_file():
+        p.error(f"--render-from {args.render_from!r} is not a file; give the --json output "
+                "of an earlier run")
     if args.samples is None:
         args.samples = 1 if args.smoke else 2
     if args.samples < 1:
@@ -405,17 +436,22 @@ def main(argv=None) -> int:
     def log(msg):
         print(msg, file=sys.stderr, flush=True)
 
-    machine = machine_description()
-    data = run(args, log)
-    machine["load_end"] = os.getloadavg()
+    if args.render_from:
+        data = rerender(args)
+        machine = data.pop("machine")
+    else:
+        machine = machine_description()
+        data = run(args, log)
+        data["command"] = args.command
+        machine["load_end"] = os.getloadavg()
     report = render(args, machine, data)
     print(report)
     if args.write:
         Path(args.write).write_text(report)
         log(f"wrote {args.write}")
     if args.json:
-        Path(args.json).write_text(json.dumps({"machine": machine, "command": args.command,
-                                               **data}, indent=1, default=str))
+        Path(args.json).write_text(json.dumps({"machine": machine, **data}, indent=1,
+                                              default=str))
     return 0
 
 
