@@ -174,6 +174,12 @@ def run_probe(spec: dict, limit_mb: float, timeout_s: float, log) -> dict:
     return res
 
 
+def _estimate_mib(estimate_memory_mb, row: dict) -> float:
+    """The preflight estimate of a size, converted from its MB (10^6 bytes) to MiB, the
+    unit of ``VmHWM`` and of every peak here."""
+    return estimate_memory_mb(row["n_sites"], row["lead_width"], norbs=row["norbs"]) * 1e6 / 2**20
+
+
 # ------------------------------------------------------------------------------------ fits
 def power_fit(n, y) -> dict | None:
     """Least squares of log y = log c + b log n; exponent b with its standard error."""
@@ -213,7 +219,7 @@ def run(args, log) -> dict:
         base = run_probe({"baseline": True, "case": first.spec, "settings": settings.__dict__,
                           "workdir": workdir}, limit_mb, 600, log)
         baseline = base["peak_rss_mb"]
-        log(f"imports-only baseline: {baseline:.0f} MB")
+        log(f"imports-only baseline: {baseline:.0f} MiB")
         results = {}
         # sizes ascending, the series interleaved at each size step
         steps = max(len(v) for v in args.sites.values())
@@ -227,8 +233,7 @@ def run(args, log) -> dict:
                 row = {"case": case.spec, "label": case.label, "n_sites": case.n_sites,
                        "lead_width": case.lead_width,
                        "norbs": 4 if series == "strip4" else 2}
-                row["estimate_mb"] = estimate_memory_mb(case.n_sites, case.lead_width,
-                                                        norbs=row["norbs"])
+                row["estimate_mb"] = _estimate_mib(estimate_memory_mb, row)
                 # skip what the sizes measured so far say will not fit or not finish
                 if len(done) >= 2:
                     mem_fit = power_fit([r["n_sites"] for r in done],
@@ -262,9 +267,10 @@ def run(args, log) -> dict:
                     row["per_sample_s"] = _median(res["times"])
                     row["factor_s"] = _median([p["factorisation"] for p in res["phases"]])
                     log(f"    {row['per_sample_s']:.3g} s/sample, peak "
-                        f"{res['peak_rss_mb']:.0f} MB, run {res['wall_s']:.0f} s")
+                        f"{res['peak_rss_mb']:.0f} MiB, run {res['wall_s']:.0f} s")
                 rows.append(row)
     return {"baseline_mb": baseline, "series": results, "samples": args.samples,
+            "estimate_unit": "MiB",
             "smoke": args.smoke, "total_s": time.perf_counter() - t_start}
 
 
@@ -297,20 +303,21 @@ def render(args, machine, data) -> str:
              f"`solve_realisation` once untimed (lead modes, MUMPS analysis, first sample), "
              f"then {data.get('samples', args.samples)} timed sample(s) (median shown). Peak memory: the "
              f"subprocess's `VmHWM` (after the build, and at the end); the imports alone "
-             f"peak at {base:.0f} MB. The preflight estimate is "
+             f"peak at {base:.0f} MiB. The preflight estimate is "
              f"`estimate_memory_mb(n_sites, lead_width_sites, norbs)` with the orbitals per "
-             f"site of the solve.\n")
+             f"site of the solve, converted from its MB (10^6 bytes) to MiB (2^20 bytes, the "
+             f"unit of `VmHWM` and of every memory figure here).\n")
     fits = {}
     for series, rows in data["series"].items():
         L.append(f"## {SERIES_TITLES[series]}\n")
         L.append("| size | sites | unknowns | build s | first sample s (with analysis) | "
-                 "s/sample | factorisation share | peak after build MB | peak MB | "
-                 "preflight estimate MB | estimate / peak | within 30 % |")
+                 "s/sample | factorisation share | peak after build MiB | peak MiB | "
+                 "preflight estimate MiB | estimate / peak | within 30 % |")
         L.append("|---|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---|")
         for r in rows:
             if "skipped" in r or "stopped" in r:
                 why = r.get("skipped") or f"{r['stopped']} (after stage {r['last_stage']!r}, " \
-                    f"{r['wall_s']:.0f} s, {r['rss_seen_mb']:.0f} MB resident seen)"
+                    f"{r['wall_s']:.0f} s, {r['rss_seen_mb']:.0f} MiB resident seen)"
                 L.append(f"| {r['label']} | {r['n_sites']:,} | {r['norbs'] * r['n_sites']:,} | "
                          f"{why} ||||||||| ")
                 continue
@@ -357,8 +364,17 @@ def render(args, machine, data) -> str:
         L.append(f"`estimate_memory_mb` against every measured peak: "
                  f"{'within' if ok else '**not** within'} {100 * ESTIMATE_TOLERANCE:.0f} % at "
                  f"every size (worst: {worst['label']}, {'4' if worst['norbs'] == 4 else '2'} "
-                 f"orbitals, estimate {worst['estimate_mb']:,.0f} MB against "
-                 f"{worst['peak_rss_mb']:,.0f} MB measured).\n")
+                 f"orbitals, estimate {worst['estimate_mb']:,.0f} MiB against "
+                 f"{worst['peak_rss_mb']:,.0f} MiB measured).\n")
+        before = [r["estimate_measured_mib"] / r["peak_rss_mb"] for r in rows
+                  if "estimate_measured_mib" in r]
+        if data.get("rendered") and before:
+            L.append(f"The estimate of the commit the run was measured with "
+                     f"({machine['git']}) gave {min(before):.2f}–{max(before):.2f} of the "
+                     f"measured peaks. Where `estimate_memory_mb` was fitted to these very "
+                     f"measurements (its docstring names the run), the agreement above is that "
+                     f"of a fit at these sizes, not an independent check; beyond them it is an "
+                     f"extrapolation.\n")
     L.append(f"Total run time: {data['total_s']:.0f} s.\n")
     return "\n".join(L) + "\n"
 
@@ -371,10 +387,13 @@ def rerender(args) -> dict:
     from pipeline.system.preflight import estimate_memory_mb
 
     data = json.loads(Path(args.render_from).read_text())
+    # runs before the unit was recorded stored the estimate in MB (10^6 bytes)
+    to_mib = 1.0 if data.get("estimate_unit") == "MiB" else 1e6 / 2**20
     for rows in data["series"].values():
         for r in rows:
-            r["estimate_mb"] = estimate_memory_mb(r["n_sites"], r["lead_width"],
-                                                  norbs=r["norbs"])
+            r.setdefault("estimate_measured_mib", r["estimate_mb"] * to_mib)
+            r["estimate_mb"] = _estimate_mib(estimate_memory_mb, r)
+    data["estimate_unit"] = "MiB"
     git = _sp.run(["git", "rev-parse", "--short", "HEAD"], cwd=REPO, capture_output=True,
                   text=True).stdout.strip() or "unknown"
     data["rendered"] = {"command": args.command, "git": git,

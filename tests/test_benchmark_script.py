@@ -127,7 +127,7 @@ def test_scaling_smoke_run_fits_and_checks_the_estimate(tmp_path):
                 tmp_path)
     for needle in ("SMOKE TEST", "Command: `", "; git ", "Load average",
                    "## strip, spin block", "## H-bar, spin block", "## strip, four-band",
-                   "| size | sites | unknowns |", "preflight estimate MB",
+                   "| size | sites | unknowns |", "preflight estimate MiB",
                    "Log-log least squares", "extrapolated from the memory fit",
                    "## Preflight memory estimate"):
         assert needle in text, needle
@@ -137,6 +137,11 @@ def test_scaling_smoke_run_fits_and_checks_the_estimate(tmp_path):
     # the four-band series solves with 4 orbitals per site, the others with 2
     assert {r["norbs"] for r in raw["series"]["strip4"]} == {4}
     assert {r["norbs"] for r in raw["series"]["strip"]} == {2}
+    # a recorded run renders again (estimate recomputed) without running anything
+    again = _run([SCALING, "--render-from", out_json], tmp_path, timeout=120)
+    assert "rendered again from its raw numbers" in again and "SMOKE TEST" in again
+    assert again.split("Machine:")[1].split("## Preflight")[0].count("| strip ") == \
+        text.split("Machine:")[1].split("## Preflight")[0].count("| strip ")
 
 
 @pytest.mark.slow
