@@ -268,19 +268,33 @@ def test_a_client_without_the_runs_credentials_is_refused(tmp_path):
         close()
 
 
-#: realisations of the time-limit test: a few minutes of work on two workers here, so that a job
-#: with Slurm's shortest time limit (1 minute) stops mid-sweep
-_EXPIRY_REALISATIONS = 1000
+#: the time-limit test's run is sized from a calibration sweep of this many realisations on
+#: the local workers: about _EXPIRY_SECONDS of work for two workers, more than a job with Slurm's
+#: shortest time limit (1 minute, of which the start-up takes a good part) can do, and few
+#: enough for a handful of resubmissions. A fixed count stopped working when the solve became
+#: faster (1000 realisations then fitted in one job).
+_CALIBRATION_REALISATIONS = 200
+_EXPIRY_SECONDS = 150.0
+
+
+def _expiry_realisations(tiny_config_text, client, directory) -> int:
+    cfg = parse_config(tiny_config_text(realisations=_CALIBRATION_REALISATIONS,
+                                        directory=directory, **_LONG))
+    t0 = time.monotonic()
+    run_sweep(cfg, client=client, store_path=directory / "calibration.zarr", progress=False)
+    per_realisation = (time.monotonic() - t0) / _CALIBRATION_REALISATIONS
+    return int(min(20000, max(500, _EXPIRY_SECONDS / per_realisation)))
 
 
 def test_a_job_killed_at_its_time_limit_is_completed_by_resubmission(tmp_path, tiny_config_text,
                                                                     dask_clients, jobs):
+    realisations = _expiry_realisations(tiny_config_text, dask_clients[2], tmp_path / "cal")
     cfg_path = tmp_path / "expiry.toml"
-    cfg_path.write_text(tiny_config_text(realisations=_EXPIRY_REALISATIONS, **_LONG))
+    cfg_path.write_text(tiny_config_text(realisations=realisations, **_LONG))
     store = tmp_path / "store.zarr"
     shared = tmp_path / "shared"
     text, settings = _render(cfg_path, tmp_path, store, jobs=2, walltime="00:01:00")
-    total = _EXPIRY_REALISATIONS * 2 * 3
+    total = realisations * 2 * 3
     states, done_after = [], []
     for _ in range(8):  # resubmit the same script until the run is complete, as a user would
         job = submit_batch_script(text, settings.shared_directory)
@@ -290,7 +304,7 @@ def test_a_job_killed_at_its_time_limit_is_completed_by_resubmission(tmp_path, t
         if states[-1] == "COMPLETED":
             break
         assert states[-1] == "TIMEOUT", _log(shared, job)[-4000:]
-    assert states[0] == "TIMEOUT" and states[-1] == "COMPLETED", states
+    assert states[0] == "TIMEOUT" and states[-1] == "COMPLETED", (realisations, states)
     assert 0 < done_after[0] < total, f"the first job did not stop mid-sweep: {done_after}"
     reference = _local_reference(parse_config(cfg_path.read_text()), dask_clients[2],
                                  tmp_path / "local.zarr")
